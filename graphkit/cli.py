@@ -1,0 +1,203 @@
+"""The ``graphkit`` command line.
+
+Exit codes: 0 done; 2 bad input or config (one line on stderr naming the file, column or key); 1 anything else.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from pathlib import Path
+
+from .errors import InputError, StoreError
+
+__all__ = ["main"]
+
+
+def _prefect_env() -> None:
+    # Quiet, offline-friendly defaults for the local temporary Prefect server; users' own settings win.
+    os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
+    os.environ.setdefault("DO_NOT_TRACK", "1")
+    os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
+
+
+def cmd_refresh(args) -> int:
+    from .config import load_config
+    from .pipeline import preflight
+
+    cfg = load_config(args.config, args.set)
+    preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
+    _prefect_env()
+    from flows.refresh import refresh_flow
+
+    version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
+    print(f"published version {version} to {cfg.store_path}")
+    return 0
+
+
+def _jsonable(row: dict) -> dict:
+    out = {}
+    for k, v in row.items():
+        out[k] = v.isoformat() if hasattr(v, "isoformat") else v
+    return out
+
+
+def cmd_versions(args) -> int:
+    from .store import list_versions
+
+    rows = list_versions(args.store)
+    if args.json:
+        out = []
+        for r in rows:
+            r = _jsonable(r)
+            r["created_at"] = r.get("created_at")
+            out.append(r)
+        print(json.dumps(out, indent=2, default=str))
+        return 0
+    from rich.console import Console
+    from rich.table import Table
+
+    table = Table(title=f"versions in {args.store}")
+    for col in ("version", "status", "current", "created_at", "nodes", "dim", "objective", "train s"):
+        table.add_column(col)
+    for r in rows:
+        table.add_row(str(r["version"]), r["status"], "*" if r["is_current"] else "",
+                      str(r["created_at"])[:19], str(r["n_nodes"]), str(r["dim"]), str(r["objective"]),
+                      str((r.get("timings") or {}).get("train", "")))
+    Console().print(table)
+    return 0
+
+
+def cmd_export(args) -> int:
+    import pyarrow.parquet as pq
+
+    from .store import connect
+
+    con = connect(args.store, version=args.version)
+    try:
+        table = con.sql("select node_id, vector from embeddings").to_arrow_table()
+    finally:
+        con.close()
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
+    pq.write_table(table, tmp, compression="zstd")
+    os.replace(tmp, out)
+    print(f"wrote {table.num_rows} rows to {out}")
+    return 0
+
+
+def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None) -> list[tuple]:
+    """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; bound as a parameter)."""
+    from .store import connect
+
+    con = connect(store, version=version)
+    try:
+        found = con.execute("select count(*) from embeddings where node_id::varchar = $id", {"id": node_id}).fetchall()
+        if not found[0][0]:
+            raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings")
+        return con.execute(
+            "with q as (select vector from embeddings where node_id::varchar = $id limit 1) "
+            "select e.node_id, array_cosine_similarity(e.vector, q.vector) as similarity "
+            "from embeddings as e, q where e.node_id::varchar <> $id order by similarity desc, e.node_id limit $k",
+            {"id": node_id, "k": int(top)}).fetchall()
+    finally:
+        con.close()
+
+
+def cmd_similar(args) -> int:
+    if args.top < 1:
+        raise InputError(f"--top must be >= 1, got {args.top}")
+    rows = similar_nodes(args.store, args.node_id, args.top, args.version)
+    if args.json:
+        print(json.dumps([{"node_id": n, "similarity": round(float(s), 6)} for n, s in rows], default=str))
+    else:
+        for n, s in rows:
+            print(f"{n}\t{s:.4f}")
+    return 0
+
+
+def cmd_sql(args) -> int:
+    import duckdb
+
+    from .store import connect
+
+    con = connect(args.store)
+    try:
+        try:
+            rel = con.sql(args.query)
+        except duckdb.Error as exc:
+            raise InputError(f"query failed: {str(exc).splitlines()[0]}") from None
+        if rel is not None:
+            rel.show(max_rows=args.max_rows, max_width=10_000)
+    finally:
+        con.close()
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="graphkit", description="Nightly node embeddings for relationship graphs.")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    r = sub.add_parser("refresh", help="run the refresh flow for a config and publish a new version")
+    r.add_argument("config", help="TOML config file")
+    r.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                   help="override a config key (repeatable)")
+    r.set_defaults(func=cmd_refresh)
+
+    v = sub.add_parser("versions", help="list the versions in a store")
+    v.add_argument("store")
+    v.add_argument("--json", action="store_true", help="print a JSON array, one object per version")
+    v.set_defaults(func=cmd_versions)
+
+    e = sub.add_parser("export", help="write a version's vectors to a Parquet file")
+    e.add_argument("store")
+    e.add_argument("--out", required=True, help="output Parquet file")
+    e.add_argument("--version", type=int, default=None, help="version number (default: current)")
+    e.set_defaults(func=cmd_export)
+
+    s = sub.add_parser("similar", help="nodes most similar (cosine) to a node")
+    s.add_argument("store")
+    s.add_argument("node_id")
+    s.add_argument("--top", type=int, default=10)
+    s.add_argument("--version", type=int, default=None)
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_similar)
+
+    q = sub.add_parser("sql", help="run a DuckDB query over the store (views embeddings, versions)")
+    q.add_argument("store")
+    q.add_argument("query")
+    q.add_argument("--max-rows", type=int, default=40)
+    q.set_defaults(func=cmd_sql)
+    return p
+
+
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # argparse already printed its one-line usage error
+        return 2 if exc.code not in (0, None) else 0
+    try:
+        return args.func(args)
+    except InputError as exc:
+        print(f"graphkit: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("graphkit: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, exit 1
+        if os.environ.get("GRAPHKIT_DEBUG"):
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        print(f"graphkit: failed: {type(exc).__name__}: {first} (set GRAPHKIT_DEBUG=1 for a traceback)",
+              file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,154 @@
+"""The refresh as plain functions, one per stage; ``flows/refresh.py`` wraps each in a Prefect task.
+
+Every stage reads and writes files under ``STORE/work/`` and returns a small JSON-serialisable dict (paths,
+counts, seconds), never arrays. A stage's folder is named by a key built from the input fingerprint and the
+parameters that stage depends on, and its completion marker is written last, so a rerun after a crash skips what
+already finished (changing the training dimension does not redo the walks).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow.parquet as pq
+
+from .config import RefreshConfig
+from .graph import CSRGraph
+from .ingest import check_edge_table, ingest_edges
+from .io import digest, fingerprint_files, read_json, write_json_atomic
+
+__all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_walks", "stage_train", "stage_publish",
+           "finish_run", "refresh"]
+
+
+def preflight(cfg: RefreshConfig) -> dict[str, Any]:
+    """Checks that must fail within seconds, before any work: input files, their format and columns."""
+    return check_edge_table(cfg.edges_path, cfg.input.source, cfg.input.target, cfg.input.weight)
+
+
+def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
+    """Work folders and stage keys for a config (reads only the input files' sizes and footers)."""
+    store = cfg.store_path
+    files = preflight(cfg)["files"]
+    fingerprint = fingerprint_files(files)
+    ingest_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(), "edges": cfg.edges_path})
+    walks_key = digest({"ingest": ingest_key, "walks": cfg.walks.model_dump()})
+    train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads"})})
+    work = store / "work"
+    return {
+        "store": str(store),
+        "work": str(work),
+        "fingerprint": fingerprint,
+        "ingest_dir": str(work / f"ingest-{ingest_key}"),
+        "walks_dir": str(work / f"walks-{walks_key}"),
+        "train_dir": str(work / f"train-{train_key}"),
+        "params": cfg.to_public_dict(),
+    }
+
+
+def stage_ingest(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """DuckDB ingest into ``ingest_dir`` (skipped when its ``ingest.json`` exists)."""
+    out = Path(plan["ingest_dir"])
+    if (out / "ingest.json").exists():
+        return {**read_json(out / "ingest.json"), "skipped": True}
+    shutil.rmtree(out, ignore_errors=True)  # leftovers of a dead run
+    inp = cfg.input
+    return ingest_edges(cfg.edges_path, out, source=inp.source, target=inp.target, weight=inp.weight,
+                        directed=inp.directed)
+
+
+def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """Open the memory-mapped CSR written by ingest and check its invariants."""
+    t0 = time.perf_counter()
+    folder = Path(plan["ingest_dir"]) / "graph"
+    graph = CSRGraph.load(folder)
+    graph.validate()
+    deg = graph.degrees()
+    return {"graph_dir": str(folder), "n_nodes": graph.n_nodes, "adjacency_entries": graph.n_edges,
+            "isolated_nodes": int(np.count_nonzero(deg == 0)), "max_degree": int(deg.max(initial=0)),
+            "seconds": round(time.perf_counter() - t0, 3)}
+
+
+def stage_walks(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """Random walks sharded over Dask into the Parquet walk corpus (finished shards are kept on a rerun)."""
+    from .corpus import write_walk_corpus
+
+    out = Path(plan["walks_dir"])
+    if (out / "manifest.json").exists():
+        return {**read_json(out / "manifest.json"), "skipped": True}
+    t0 = time.perf_counter()
+    w = cfg.walks
+    manifest = write_walk_corpus(Path(plan["ingest_dir"]) / "graph", out, per_node=w.per_node, length=w.length,
+                                 seed=w.seed, dask_address=cfg.dask.address, n_workers=cfg.dask.workers)
+    return {**manifest, "seconds": round(time.perf_counter() - t0, 3)}
+
+
+def stage_train(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """Skip-gram over the walk corpus, chunk by chunk; writes ``vectors.npy`` (float32 [n_nodes, dim])."""
+    from .corpus import WalkCorpus
+    from .train import train_vectors
+
+    out = Path(plan["train_dir"])
+    done = out / "train.json"
+    if done.exists():
+        return {**read_json(done), "skipped": True}
+    t0 = time.perf_counter()
+    corpus = WalkCorpus(plan["walks_dir"])
+    t = cfg.train
+    vectors = train_vectors(corpus, corpus.n_nodes, dim=t.dim, window=t.window, objective=t.objective,
+                            negatives=t.negatives, epochs=t.epochs, seed=cfg.walks.seed, threads=t.threads,
+                            learning_rate=t.learning_rate)
+    out.mkdir(parents=True, exist_ok=True)
+    tmp = out / f".vectors-{os.getpid()}.npy"
+    np.save(tmp, vectors)
+    os.replace(tmp, out / "vectors.npy")
+    seconds = time.perf_counter() - t0
+    tokens = int(corpus.n_tokens) * t.epochs
+    result = {"vectors": str(out / "vectors.npy"), "n_nodes": int(vectors.shape[0]), "dim": int(vectors.shape[1]),
+              "tokens": tokens, "tokens_per_second": round(tokens / max(seconds, 1e-9)),
+              "seconds": round(seconds, 3)}
+    write_json_atomic(done, result)
+    return result
+
+
+def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict) -> int:
+    """Publish the trained vectors as a new current version; returns its number."""
+    from .store import publish_embeddings, store_lock
+
+    nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet", columns=["node_idx", "node_id"])
+    idx = nodes.column("node_idx").to_numpy()
+    if not np.array_equal(idx, np.arange(idx.size)):
+        raise RuntimeError("node dictionary is not in node_idx order")
+    vectors = np.load(train["vectors"], mmap_mode="r")
+    counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
+              "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
+    timings = {name: (0.0 if stage.get("skipped") else stage["seconds"])
+               for name, stage in (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train))}
+    metrics = {"train_tokens_per_second": train["tokens_per_second"]}
+    with store_lock(plan["store"]):
+        return publish_embeddings(plan["store"], nodes.column("node_id").combine_chunks(), np.asarray(vectors),
+                                  params=plan["params"], fingerprint=plan["fingerprint"], counts=counts,
+                                  timings=timings, metrics=metrics, objective=cfg.train.objective)
+
+
+def finish_run(plan: dict) -> None:
+    """Remove the run's work folders once its version is published (the walk corpus can be large)."""
+    for key in ("ingest_dir", "walks_dir", "train_dir"):
+        shutil.rmtree(plan[key], ignore_errors=True)
+
+
+def refresh(cfg: RefreshConfig) -> int:
+    """Run every stage in order without Prefect (what the flow does, for notebooks and tests)."""
+    plan = plan_run(cfg)
+    ingest = stage_ingest(cfg, plan)
+    graph = stage_graph(cfg, plan)
+    walks = stage_walks(cfg, plan)
+    train = stage_train(cfg, plan)
+    version = stage_publish(cfg, plan, ingest, graph, walks, train)
+    finish_run(plan)
+    return version

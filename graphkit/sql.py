@@ -1,0 +1,38 @@
+"""DuckDB helpers: load ``sql/<name>.sql``, open working connections, bind parameters."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+
+import duckdb
+
+__all__ = ["SQL_DIR", "load_sql", "work_connection", "quote_ident"]
+
+SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
+
+
+@lru_cache(maxsize=None)
+def load_sql(name: str) -> str:
+    """The text of ``sql/<name>.sql`` (``name`` may contain a sub-folder, e.g. ``checks/edge_counts``)."""
+    return (SQL_DIR / f"{name}.sql").read_text()
+
+
+def quote_ident(name: str) -> str:
+    """Quote a column name for DuckDB (identifiers cannot be bound as parameters)."""
+    return '"' + name.replace('"', '""') + '"'
+
+
+def work_connection(temp_dir: Path | None = None, *, threads: int | None = None,
+                    memory_limit: str | None = None) -> duckdb.DuckDBPyConnection:
+    """An in-memory DuckDB connection for one stage; it spills to ``temp_dir`` when memory runs short."""
+    con = duckdb.connect(":memory:")
+    if temp_dir is not None:
+        Path(temp_dir).mkdir(parents=True, exist_ok=True)
+        con.execute("set temp_directory = $d", {"d": str(temp_dir)})
+    if threads:
+        con.execute(f"set threads = {int(threads)}")
+    if memory_limit:
+        con.execute("set memory_limit = $m", {"m": memory_limit})
+    con.execute("set preserve_insertion_order = false")
+    return con

@@ -1,0 +1,21 @@
+-- versions: one row per refresh that reached the publish step, complete or failed.
+-- grain: one row per version number.
+-- inputs: written by graphkit.store at publish time.
+-- params: none.
+create table if not exists versions (
+    version integer primary key,
+    created_at timestamp not null,
+    status varchar not null,          -- 'complete' or 'failed'
+    is_current boolean not null,
+    path varchar,                     -- the version's Parquet file, relative to the store
+    n_nodes bigint,
+    dim integer,
+    objective varchar,
+    params json,                      -- the full resolved config
+    input_fingerprint json,           -- path, size and footer hash of each input file
+    counts json,                      -- rows read, dropped by reason, merged, nodes, edges, walks, tokens
+    timings json,                     -- seconds per stage
+    metrics json,
+    package_version varchar,
+    message varchar
+)
