@@ -103,8 +103,7 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
             raise StoreError(f"{store}: no complete version {version}")
         rel_path, dim = rows[0]
         con.execute(load_sql("embeddings").format(
-            view="temp.embeddings", path=_sql_literal(str((Path(store) / rel_path).resolve())), dim=int(dim)))
-        con.execute("set search_path = 'temp,main'")
+            kind="temp ", view="embeddings", path=_sql_literal(str((Path(store) / rel_path).resolve())), dim=int(dim)))
     return con
 
 
@@ -202,10 +201,10 @@ def _rebuild_catalog(store: Path, row: dict[str, Any], make_current: bool) -> No
         con.execute(f"insert into versions ({cols}) values ({', '.join('$' + k for k in row)})", row)
         if row["status"] == "complete":
             abs_path = _sql_literal(str((store / row["path"]).resolve()))
-            con.execute(load_sql("embeddings").format(view=f"embeddings_v{row['version']:06d}",
+            con.execute(load_sql("embeddings").format(kind="", view=f"embeddings_v{row['version']:06d}",
                                                       path=abs_path, dim=int(row["dim"])))
             if make_current:
-                con.execute(load_sql("embeddings").format(view="embeddings", path=abs_path, dim=int(row["dim"])))
+                con.execute(load_sql("embeddings").format(kind="", view="embeddings", path=abs_path, dim=int(row["dim"])))
         con.execute("commit")
         con.execute("checkpoint")
     finally:
