@@ -44,15 +44,18 @@ def refresh_flow(config_path: str = "sample_parquet/demo.toml", overrides: list[
     log = get_run_logger()
     cfg = load_config(config_path, overrides or [])
     plan = pipeline.plan_run(cfg)
-    ingest = ingest_task(cfg, plan)
-    log.info("ingest: %s", ingest["counts"])
-    graph = graph_task(cfg, plan)
-    walks = walks_task(cfg, plan)
-    log.info("walks: %d walks, %d tokens", walks["n_walks"], walks["n_tokens"])
-    train = train_task(cfg, plan)
-    log.info("train: %d tokens at %d tokens/s", train["tokens"], train["tokens_per_second"])
-    version = publish_task(cfg, plan, ingest, graph, walks, train)
-    pipeline.finish_run(plan)
+    with pipeline.run_lock(cfg):
+        ingest = ingest_task(cfg, plan)
+        log.info("ingest: %s", ingest["counts"])
+        for warning in ingest.get("warnings", []):
+            log.warning(warning)
+        graph = graph_task(cfg, plan)
+        walks = walks_task(cfg, plan)
+        log.info("walks: %d walks, %d tokens", walks["n_walks"], walks["n_tokens"])
+        train = train_task(cfg, plan)
+        log.info("train: %d tokens at %d tokens/s", train["tokens"], train["tokens_per_second"])
+        version = publish_task(cfg, plan, ingest, graph, walks, train)
+        pipeline.finish_run(plan)
     log.info("published version %d", version)
     return version
 

@@ -77,7 +77,7 @@ def cmd_export(args) -> int:
 
     con = connect(args.store, version=args.version)
     try:
-        table = con.sql("select node_id, vector from embeddings").to_arrow_table()
+        table = con.sql("select node_id, node_kind, vector from embeddings").to_arrow_table()
     finally:
         con.close()
     out = Path(args.out)

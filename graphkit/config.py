@@ -9,9 +9,10 @@ from __future__ import annotations
 import difflib
 import tomllib
 from pathlib import Path
+from datetime import date, datetime, timedelta, timezone
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from .errors import ConfigError
 
@@ -22,12 +23,73 @@ class _Section(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True, frozen=True)
 
 
-class InputSection(_Section):
-    edges: str = Field(description="Parquet file, folder or glob holding the edge table (relative to the config file).")
+class TableSection(_Section):
+    """One edge table of the graph (an entry of ``[[input.tables]]``)."""
+
+    path: str = Field(description="Parquet or CSV file, folder (hive partitions allowed) or glob, relative to the config.")
     source: str = Field(description="Column holding the source node id.")
     target: str = Field(description="Column holding the target node id.")
     weight: str | None = Field(default=None, description="Optional column holding a positive edge weight.")
+    source_kind: str = Field(default="node", min_length=1, description="Kind of the source nodes (e.g. account).")
+    target_kind: str = Field(default="node", min_length=1, description="Kind of the target nodes (e.g. device).")
+    timestamp: str | None = Field(default=None, description="Optional column with the time of each edge.")
+
+
+class InputSection(_Section):
+    edges: str | None = Field(default=None, description="Shorthand for a single table: its path.")
+    source: str | None = Field(default=None, description="Shorthand for a single table: source column.")
+    target: str | None = Field(default=None, description="Shorthand for a single table: target column.")
+    weight: str | None = Field(default=None, description="Shorthand for a single table: weight column.")
+    source_kind: str = Field(default="node", min_length=1)
+    target_kind: str = Field(default="node", min_length=1)
+    timestamp: str | None = Field(default=None, description="Shorthand for a single table: timestamp column.")
+    tables: list[TableSection] = Field(default_factory=list, description="Several edge tables in one graph.")
     directed: bool = Field(default=False, description="Treat edges as directed (walks follow edge direction).")
+    drop_null_ids: bool = Field(default=False, description="Drop rows with a null id (counted) instead of failing.")
+    since: date | datetime | None = Field(default=None, description="Keep edges at or after this time.")
+    until: date | datetime | None = Field(default=None, description="Keep edges before this time (default: now).")
+    last_days: float | None = Field(default=None, gt=0, description="Keep edges of the last N days before until.")
+    half_life_days: float | None = Field(default=None, gt=0, description="Halve an edge's weight every N days of age.")
+    hash_ids: bool = Field(default=False, description="Publish HMAC-SHA256 pseudonyms instead of raw ids.")
+    hash_salt_env: str = Field(default="GRAPHKIT_ID_SALT", min_length=1,
+                               description="Environment variable holding the secret key for hash_ids.")
+
+    @model_validator(mode="after")
+    def _one_way_to_name_tables(self):
+        single = [k for k in ("edges", "source", "target", "weight", "timestamp") if getattr(self, k) is not None]
+        if self.tables and single:
+            raise ValueError(f"give either [[input.tables]] or the single-table keys, not both (found {single[0]!r})")
+        if not self.tables:
+            for key in ("edges", "source", "target"):
+                if getattr(self, key) is None:
+                    raise ValueError(f"missing key {key!r} (or give [[input.tables]])")
+        if self.since is not None and self.last_days is not None:
+            raise ValueError("give either since or last_days, not both")
+        return self
+
+    def table_specs(self) -> list[TableSection]:
+        """The edge tables, the single-table shorthand included (paths as written)."""
+        if self.tables:
+            return list(self.tables)
+        return [TableSection(path=self.edges, source=self.source, target=self.target, weight=self.weight,
+                             source_kind=self.source_kind, target_kind=self.target_kind, timestamp=self.timestamp)]
+
+    def time_window(self, now: datetime | None = None) -> dict[str, Any]:
+        """``since``/``until`` as UTC datetimes (None when open) and the reference time of the weight decay."""
+        until = _utc(self.until)
+        as_of = until or now or datetime.now(timezone.utc)
+        since = _utc(self.since)
+        if self.last_days is not None:
+            since = as_of - timedelta(days=self.last_days)
+        return {"since": since, "until": until, "as_of": as_of, "half_life_days": self.half_life_days}
+
+
+def _utc(value):
+    if value is None:
+        return None
+    if not isinstance(value, datetime):
+        value = datetime(value.year, value.month, value.day)
+    return value.replace(tzinfo=timezone.utc) if value.tzinfo is None else value.astimezone(timezone.utc)
 
 
 class WalksSection(_Section):
@@ -68,8 +130,12 @@ class RefreshConfig(_Section):
 
     @property
     def edges_path(self) -> str:
-        """The edge path resolved against the config file's folder (globs kept)."""
-        return _resolve(self.base_dir, self.input.edges)
+        """The first table's path resolved against the config file's folder (globs kept)."""
+        return self.tables()[0].path
+
+    def tables(self) -> list[TableSection]:
+        """Every edge table with its path resolved against the config file's folder."""
+        return [t.model_copy(update={"path": _resolve(self.base_dir, t.path)}) for t in self.input.table_specs()]
 
     @property
     def store_path(self) -> Path:
@@ -78,7 +144,9 @@ class RefreshConfig(_Section):
     def to_public_dict(self) -> dict[str, Any]:
         """The resolved parameters as recorded with each version (absolute paths)."""
         d = self.model_dump(exclude={"base_dir", "source_file"})
-        d["input"]["edges"] = self.edges_path
+        d["input"]["tables"] = [t.model_dump() for t in self.tables()]
+        for key in ("edges", "source", "target", "weight", "timestamp"):
+            d["input"].pop(key, None)
         d["store"]["path"] = str(self.store_path)
         return d
 
@@ -141,8 +209,14 @@ def _format_error(exc: ValidationError, where: str) -> str:
     else:
         name = "config"
     msg = err["msg"]
+    if len(loc) >= 3 and loc[1] == "tables" and loc[2].isdigit():
+        name = f"[[input.tables]] entry {int(loc[2]) + 1}" + (f" key {'.'.join(loc[3:])}" if loc[3:] else "")
     if err["type"] == "missing":
         return f"{where}: missing required key {name}"
+    if err["type"] == "extra_forbidden":
+        return f"{where}: unknown key {name}"
+    if err["type"] == "value_error":
+        return f"{where}: {name}: {msg.removeprefix('Value error, ')}"
     return f"{where}: {name}: {msg[0].lower() + msg[1:]}, got {err.get('input')!r}"
 
 

@@ -1,13 +1,20 @@
-"""Ingest: one Parquet edge table -> cleaned, merged, indexed edges and a dense node dictionary (DuckDB)."""
+"""Ingest: edge tables -> cleaned, merged, indexed edges and a dense node dictionary, all in DuckDB.
+
+Several tables can feed one graph (transfers between accounts, logins from devices); each side of each table has a
+node kind and ids are kept apart per kind, so account 17 and device 17 are different nodes.
+"""
 
 from __future__ import annotations
 
 import difflib
+import re
 import time
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import duckdb
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -15,9 +22,31 @@ import pyarrow.parquet as pq
 from .errors import EdgeTableError, GraphDataWarning
 from .graph import CSRGraph
 from .io import fingerprint_files, resolve_input_files, write_json_atomic
-from .sql import load_sql, quote_ident, work_connection
+from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
 
-__all__ = ["check_edge_table", "ingest_edges"]
+__all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "ingest_tables", "ingest_edges"]
+
+_HIVE_PART = re.compile(r"^([A-Za-z_][A-Za-z0-9_]*)=(.*)$")
+
+
+@dataclass(frozen=True)
+class EdgeTable:
+    """One edge table: where it is, which columns hold what, and the node kind of each side."""
+
+    path: str
+    source: str
+    target: str
+    weight: str | None = None
+    source_kind: str = "node"
+    target_kind: str = "node"
+    timestamp: str | None = None
+
+    @classmethod
+    def of(cls, spec) -> "EdgeTable":
+        if isinstance(spec, cls):
+            return spec
+        d = spec if isinstance(spec, dict) else spec.model_dump()
+        return cls(**{k: d.get(k, getattr(cls, k, None)) for k in cls.__dataclass_fields__})
 
 
 def _suggest(name: str, columns) -> str:
@@ -25,77 +54,164 @@ def _suggest(name: str, columns) -> str:
     return f" (did you mean {close[0]!r}?)" if close else f" (columns: {', '.join(columns)})"
 
 
-def _id_kind(t: pa.DataType) -> str:
-    if pa.types.is_integer(t):
+def _id_kind(t: str) -> str:
+    t = t.upper()
+    if any(x in t for x in ("INT", "HUGEINT")) or t in ("BIGINT", "INTEGER", "SMALLINT", "TINYINT"):
         return "integer"
-    if pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
+    if t in ("VARCHAR", "STRING", "TEXT") or t.startswith("VARCHAR"):
         return "string"
+    return t.lower()
+
+
+def _arrow_type_name(t: pa.DataType) -> str:
+    if pa.types.is_integer(t):
+        return "BIGINT"
+    if pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
+        return "VARCHAR"
+    if pa.types.is_floating(t) or pa.types.is_decimal(t):
+        return "DOUBLE"
+    if pa.types.is_timestamp(t) or pa.types.is_date(t):
+        return "TIMESTAMP"
     return str(t)
 
 
-def check_edge_table(edges: str, source: str, target: str, weight: str | None = None) -> dict[str, Any]:
-    """Cheap checks of an edge table before any work starts: files exist, are Parquet, carry the columns.
+def _is_csv(files) -> bool:
+    return all(f.suffix.lower() in (".csv", ".tsv") or f.name.lower().endswith((".csv.gz", ".csv.zst"))
+               for f in files)
 
-    Reads only the Parquet footers.
+
+def _file_columns(f: Path) -> dict[str, str]:
+    """Column name -> coarse type name of one file (Parquet: the footer only; CSV: DuckDB's sniffer)."""
+    if _is_csv([f]):
+        con = duckdb.connect()
+        try:
+            rel = con.read_csv(str(f), header=True)
+            cols = dict(zip(rel.columns, (str(t) for t in rel.types)))
+        except duckdb.Error as exc:
+            raise EdgeTableError(f"{f}: not a readable CSV file ({str(exc).splitlines()[0]})") from None
+        finally:
+            con.close()
+        return cols
+    try:
+        schema = pq.read_metadata(f).schema.to_arrow_schema()
+    except (pa.ArrowInvalid, OSError) as exc:
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise EdgeTableError(f"{f}: not a readable Parquet file ({reason})") from None
+    cols = {name: _arrow_type_name(schema.field(name).type) for name in schema.names}
+    for part in f.parts[:-1]:  # hive partition folders (day=2026-11-30/) add columns
+        m = _HIVE_PART.match(part)
+        if m and m.group(1) not in cols:
+            cols[m.group(1)] = "HIVE"
+    return cols
+
+
+def _num_rows(f: Path) -> int | None:
+    if _is_csv([f]):
+        return None
+    return pq.read_metadata(f).num_rows
+
+
+def check_edge_tables(tables) -> dict[str, Any]:
+    """Cheap checks of every edge table before any work starts: files exist, are readable, carry the columns,
+    and all node ids have one type. Reads only Parquet footers (and the first rows of CSV files).
 
     Returns
     -------
     dict
-        ``files`` (list of Path), ``n_rows`` (int), ``id_type`` (the id column's Arrow type as a string).
+        ``files`` (list of list of Path, per table), ``id_type`` ("integer" or "string"), ``n_rows``
+        (None when a CSV table is involved).
 
     Raises
     ------
     EdgeTableError
-        Naming the file and column: no files, not Parquet, missing column (with the closest existing name),
-        ids of different types across files or between source and target, a non-numeric weight.
+        Naming the file and column: no files, unreadable file, missing column (with the closest existing name),
+        ids of different types across files or tables, a non-numeric weight.
     """
-    files = resolve_input_files(edges)
-    n_rows = 0
-    id_kinds: dict[str, Path] = {}
-    for f in files:
-        try:
-            meta = pq.read_metadata(f)
-            schema = meta.schema.to_arrow_schema()
-        except (pa.ArrowInvalid, OSError) as exc:
-            reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-            raise EdgeTableError(f"{f}: not a readable Parquet file ({reason})") from None
-        names = schema.names
-        for role, col in (("source", source), ("target", target), ("weight", weight)):
-            if col is not None and col not in names:
-                raise EdgeTableError(f"{f}: no column {col!r} for [input] {role}{_suggest(col, names)}")
-        for col in (source, target):
-            id_kinds.setdefault(_id_kind(schema.field(col).type), f)
-        if weight is not None:
-            wt = schema.field(weight).type
-            if not (pa.types.is_integer(wt) or pa.types.is_floating(wt) or pa.types.is_decimal(wt)):
-                raise EdgeTableError(f"{f}: weight column {weight!r} must be numeric, got {wt}")
-        n_rows += meta.num_rows
+    tables = [EdgeTable.of(t) for t in tables]
+    all_files, n_rows = [], 0
+    id_kinds: dict[str, str] = {}
+    for i, t in enumerate(tables):
+        key = "[input]" if len(tables) == 1 else f"[[input.tables]] entry {i + 1}"
+        files = resolve_input_files(t.path, suffixes=(".parquet", ".csv"))
+        for f in files:
+            cols = _file_columns(f)
+            for role, col in (("source", t.source), ("target", t.target), ("weight", t.weight),
+                              ("timestamp", t.timestamp)):
+                if col is not None and col not in cols:
+                    raise EdgeTableError(f"{f}: no column {col!r} for {key} {role}{_suggest(col, cols)}")
+            for col in (t.source, t.target):
+                if cols[col] != "HIVE":
+                    id_kinds.setdefault(_id_kind(cols[col]), f"{f} column {col!r}")
+            if t.weight is not None and cols[t.weight] not in ("DOUBLE", "BIGINT", "HIVE", "FLOAT") \
+                    and not any(x in cols[t.weight].upper() for x in ("INT", "DOUBLE", "FLOAT", "DECIMAL")):
+                raise EdgeTableError(f"{f}: weight column {t.weight!r} must be numeric, got {cols[t.weight]}")
+            rows = _num_rows(f)
+            n_rows = None if rows is None or n_rows is None else n_rows + rows
+        all_files.append(files)
     if len(id_kinds) > 1:
-        (k1, f1), (k2, f2) = list(id_kinds.items())[:2]
-        raise EdgeTableError(f"{f2}: node ids of type {k2} in column {source!r}/{target!r}, "
-                             f"but {k1} in {f1}; all ids must have one type")
+        (k1, w1), (k2, w2) = list(id_kinds.items())[:2]
+        raise EdgeTableError(f"{w2}: node ids of type {k2}, but of type {k1} in {w1}; all ids must have one type")
     if n_rows == 0:
-        raise EdgeTableError(f"{edges}: the edge table is empty (0 rows in {len(files)} file(s))")
-    return {"files": files, "n_rows": n_rows, "id_type": next(iter(id_kinds))}
+        raise EdgeTableError(f"{tables[0].path}: the edge table is empty (0 rows)")
+    id_type = next(iter(id_kinds), "string")
+    if id_type not in ("integer", "string"):
+        raise EdgeTableError(f"{id_kinds[id_type]}: node ids must be integers or strings, got {id_type}")
+    return {"files": all_files, "id_type": id_type, "n_rows": n_rows}
 
 
-def ingest_edges(edges: str, out_dir, *, source: str, target: str, weight: str | None = None,
-                 directed: bool = False, threads: int | None = None) -> dict[str, Any]:
-    """Read an edge table with DuckDB and write the graph a run works on.
+def check_edge_table(edges: str, source: str, target: str, weight: str | None = None) -> dict[str, Any]:
+    """:func:`check_edge_tables` for a single table; ``files`` is then a flat list."""
+    info = check_edge_tables([EdgeTable(edges, source, target, weight)])
+    return {**info, "files": info["files"][0]}
 
-    Null ids and self-loops are dropped and counted, duplicate edges merged (weights summed), undirected edges
-    stored in both directions, node ids of any type mapped to dense int32 indices in id order.
+
+def _run(con, name: str, params: dict, *, create: str | None = None):
+    """Run ``sql/<name>.sql`` with the parameters it names, optionally as ``create <create> as ...``."""
+    sql = load_sql(name)
+    return con.execute((f"create {create} as " if create else "") + sql, bind(sql, params))
+
+
+def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: str) -> None:
+    """Register ``raw_edges(src_kind, src, dst_kind, dst, weight, ts)``: every table projected and stacked."""
+    id_sql = "bigint" if id_type == "integer" else "varchar"
+    parts = []
+    for t, fs in zip(tables, files):
+        names = [str(f) for f in fs]
+        if _is_csv(fs):
+            rel = con.read_csv(names, header=True)
+        else:
+            rel = con.read_parquet(names, hive_partitioning=Path(t.path).is_dir(), union_by_name=True)
+        w = f"{quote_ident(t.weight)}::double" if t.weight else "1.0::double"
+        ts = f"{quote_ident(t.timestamp)}::timestamptz" if t.timestamp else "null::timestamptz"
+        parts.append(rel.project(
+            f"{sql_literal(t.source_kind)} as src_kind, {quote_ident(t.source)}::{id_sql} as src, "
+            f"{sql_literal(t.target_kind)} as dst_kind, {quote_ident(t.target)}::{id_sql} as dst, "
+            f"{w} as weight, {ts} as ts, {sql_literal(t.path)} as table_path"))
+    rel = parts[0]
+    for p in parts[1:]:
+        rel = rel.union(p)
+    rel.create_view("raw_edges")
+
+
+def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: bool = False,
+                  window: dict | None = None, threads: int | None = None) -> dict[str, Any]:
+    """Read edge tables with DuckDB and write the graph a run works on.
+
+    Rows outside the time window are left out; rows with a null id are dropped (``drop_null_ids``) or rejected;
+    self-loops are dropped; duplicate edges merged (weights summed, after the optional decay by age); undirected
+    edges stored in both directions; ``(node_kind, node_id)`` pairs mapped to dense int32 indices in that order.
 
     Parameters
     ----------
-    edges : str
-        A Parquet file, a folder (read recursively, hive partitions allowed) or a glob.
+    tables : sequence of EdgeTable (or mappings with its fields)
     out_dir : path
         Receives ``graph/`` (CSR ``.npy`` arrays, see :meth:`CSRGraph.save`), ``nodes.parquet``
-        (node_idx int32, node_id in the input's type) and ``ingest.json`` (counts, fingerprint, timing).
-    source, target, weight : str
-        Column names; ``weight`` is optional (every edge then weighs 1 and the graph is unweighted).
+        (node_idx int32, node_kind, node_id in the input's type) and ``ingest.json`` (counts, fingerprint).
     directed : bool, default False
+    drop_null_ids : bool, default False
+    window : dict, optional
+        ``since``, ``until``, ``as_of`` (aware datetimes or None) and ``half_life_days`` (float or None), as
+        :meth:`graphkit.config.InputSection.time_window` gives.
 
     Returns
     -------
@@ -105,8 +221,8 @@ def ingest_edges(edges: str, out_dir, *, source: str, target: str, weight: str |
     Raises
     ------
     EdgeTableError
-        See :func:`check_edge_table`; also bad weights (null, NaN, infinite, zero or negative) with a count and
-        up to five example rows, and tables with no usable edge after cleaning.
+        See :func:`check_edge_tables`; also null ids (unless dropped), bad weights (null, NaN, infinite, zero or
+        negative), and tables with no usable edge, each with a count and example rows.
 
     Warns
     -----
@@ -114,41 +230,54 @@ def ingest_edges(edges: str, out_dir, *, source: str, target: str, weight: str |
         When rows were dropped (null ids, self-loops) or merged (duplicates), with the counts.
     """
     t0 = time.perf_counter()
+    tables = [EdgeTable.of(t) for t in tables]
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    info = check_edge_table(edges, source, target, weight)
-    files = info["files"]
+    info = check_edge_tables(tables)
+    window = window or {}
+    params = {"since": window.get("since"), "until": window.get("until"), "as_of": window.get("as_of"),
+              "half_life_days": window.get("half_life_days"), "directed": bool(directed)}
+    where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
     con = work_connection(out_dir / "duckdb_tmp", threads=threads)
     try:
-        hive = Path(edges).is_dir()
-        raw = con.read_parquet([str(f) for f in files], hive_partitioning=hive)
-        w_expr = f"{quote_ident(weight)}::double" if weight else "1.0::double"
-        raw.project(f"{quote_ident(source)} as src, {quote_ident(target)} as dst, {w_expr} as weight") \
-           .create_view("raw_edges")
-        counts = con.sql(load_sql("checks/edge_counts")).fetchall()[0]
-        n_rows, n_null, n_loops, n_bad_w = (int(c) for c in counts)
-        if weight and n_bad_w:
-            examples = con.sql(load_sql("checks/bad_weights")).fetchall()
-            raise EdgeTableError(f"{edges}: {n_bad_w} of {n_rows} rows have a null, NaN, infinite, zero or negative "
-                                 f"value in weight column {weight!r}, e.g. {examples}")
-        con.execute("create table edges as " + load_sql("edges"), {"directed": bool(directed)})
+        _raw_view(con, tables, info["files"], info["id_type"])
+        _run(con, "windowed_edges", params, create="temp table windowed")
+        counts = _run(con, "checks/edge_counts", params).fetchall()[0]
+        n_rows, n_outside, n_null_src, n_null_dst, n_null, n_loops, n_bad_w = (int(c) for c in counts)
+        if n_null and not drop_null_ids:
+            ex = con.sql(load_sql("checks/null_ids")).fetchall()
+            t = tables[0] if len(tables) == 1 else None
+            col = (t.source if n_null_src else t.target) if t else "source/target"
+            raise EdgeTableError(f"{ex[0][0] if ex else where}: {n_null} of {n_rows} rows have a null id in column "
+                                 f"{col!r} ({n_null_src} source, {n_null_dst} target); set [input] "
+                                 f"drop_null_ids = true to drop them")
+        if n_bad_w:
+            ex = con.sql(load_sql("checks/bad_weights")).fetchall()
+            wcol = next((t.weight for t in tables if t.path == ex[0][0]), None) if ex else None
+            raise EdgeTableError(f"{ex[0][0] if ex else where}: {n_bad_w} of {n_rows} rows have a null, NaN, "
+                                 f"infinite, zero or negative value in weight column {wcol!r}, e.g. "
+                                 f"{[tuple(r[1:]) for r in ex]}")
+        _run(con, "edges", params, create="table edges")
         n_distinct, n_kept = (int(x or 0) for x in con.sql("select count(*), sum(n_rows) from edges").fetchall()[0])
         if n_distinct == 0:
-            why = f"{n_null} with a null id, {n_loops} self-loops"
-            raise EdgeTableError(f"{edges}: no usable edge in column(s) {source!r}/{target!r} "
-                                 f"({n_rows} rows: {why})")
+            raise EdgeTableError(f"{where}: no usable edge ({n_rows} rows: {n_outside} outside the time window, "
+                                 f"{n_null} with a null id, {n_loops} self-loops); every node would be isolated")
         con.execute("create table nodes as " + load_sql("nodes"))
         n_nodes = int(con.sql("select count(*) from nodes").fetchall()[0][0])
         if n_nodes >= 2**31 - 1:
-            raise EdgeTableError(f"{edges}: {n_nodes} nodes exceed the int32 node index")
-        con.sql("select node_idx, node_id from nodes order by node_idx") \
+            raise EdgeTableError(f"{where}: {n_nodes} nodes exceed the int32 node index")
+        con.sql("select node_idx, node_kind, node_id from nodes order by node_idx") \
            .write_parquet(str(out_dir / "nodes.parquet"), compression="zstd")
-        arrays = con.execute(load_sql("edge_index"), {"directed": bool(directed)}).fetchnumpy()
+        kinds = dict(con.sql("select node_kind, count(*) from nodes group by node_kind order by 1").fetchall())
+        arrays = _run(con, "edge_index", params).fetchnumpy()
+    except duckdb.Error as exc:
+        raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
     finally:
         con.close()
     src_idx = np.asarray(arrays["src_idx"], dtype=np.int64)
     indices = np.ascontiguousarray(arrays["dst_idx"], dtype=np.int32)
-    wts = np.ascontiguousarray(arrays["weight"], dtype=np.float32) if weight else None
+    weighted = any(t.weight for t in tables) or params["half_life_days"] is not None
+    wts = np.ascontiguousarray(arrays["weight"], dtype=np.float32) if weighted else None
     del arrays
     indptr = np.zeros(n_nodes + 1, dtype=np.int64)
     np.cumsum(np.bincount(src_idx, minlength=n_nodes), out=indptr[1:])
@@ -156,24 +285,34 @@ def ingest_edges(edges: str, out_dir, *, source: str, target: str, weight: str |
     graph = CSRGraph.from_arrays(indptr, indices, wts, directed=directed)
     graph.save(out_dir / "graph")
     n_merged = n_kept - n_distinct
-    result = {
-        "edges": edges,
-        "files": [str(f) for f in files],
-        "fingerprint": fingerprint_files(files),
-        "id_type": info["id_type"],
-        "directed": bool(directed),
-        "weighted": weight is not None,
-        "counts": {
-            "rows": n_rows, "dropped_null_ids": n_null, "dropped_self_loops": n_loops,
-            "merged_duplicates": n_merged, "edges": n_distinct, "nodes": n_nodes,
-            "adjacency_entries": graph.n_edges,
-        },
-        "seconds": round(time.perf_counter() - t0, 3),
-    }
+    all_files = [f for fs in info["files"] for f in fs]
     problems = [f"{n} {what}" for n, what in ((n_null, "rows with a null id dropped"),
                                               (n_loops, "self-loops dropped"),
                                               (n_merged, "duplicate edges merged")) if n]
+    result = {
+        "tables": [t.__dict__ for t in tables],
+        "files": [str(f) for f in all_files],
+        "fingerprint": fingerprint_files(all_files),
+        "id_type": info["id_type"],
+        "directed": bool(directed),
+        "weighted": weighted,
+        "window": {k: (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in window.items()},
+        "counts": {
+            "rows": n_rows, "outside_window": n_outside, "dropped_null_ids": n_null,
+            "dropped_self_loops": n_loops, "merged_duplicates": n_merged, "edges": n_distinct, "nodes": n_nodes,
+            "nodes_by_kind": kinds, "adjacency_entries": graph.n_edges,
+        },
+        "warnings": [f"{where}: {p}" for p in problems],
+        "seconds": round(time.perf_counter() - t0, 3),
+    }
     if problems:
-        warnings.warn(f"{edges}: " + ", ".join(problems), GraphDataWarning, stacklevel=2)
+        warnings.warn(f"{where}: " + ", ".join(problems), GraphDataWarning, stacklevel=2)
     write_json_atomic(out_dir / "ingest.json", result)
     return result
+
+
+def ingest_edges(edges: str, out_dir, *, source: str, target: str, weight: str | None = None,
+                 directed: bool = False, drop_null_ids: bool = False, threads: int | None = None) -> dict[str, Any]:
+    """:func:`ingest_tables` for one table whose nodes are all of one kind."""
+    return ingest_tables([EdgeTable(edges, source, target, weight)], out_dir, directed=directed,
+                         drop_null_ids=drop_null_ids, threads=threads)

@@ -10,7 +10,10 @@ from __future__ import annotations
 
 import os
 import shutil
+import signal
 import time
+from datetime import datetime
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -19,24 +22,28 @@ import pyarrow.parquet as pq
 
 from .config import RefreshConfig
 from .graph import CSRGraph
-from .ingest import check_edge_table, ingest_edges
+from .ingest import check_edge_tables, ingest_tables
 from .io import digest, fingerprint_files, read_json, write_json_atomic
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_walks", "stage_train", "stage_publish",
-           "finish_run", "refresh"]
+           "finish_run", "refresh", "run_lock", "fault_point"]
 
 
 def preflight(cfg: RefreshConfig) -> dict[str, Any]:
     """Checks that must fail within seconds, before any work: input files, their format and columns."""
-    return check_edge_table(cfg.edges_path, cfg.input.source, cfg.input.target, cfg.input.weight)
+    return check_edge_tables(cfg.tables())
 
 
 def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
     """Work folders and stage keys for a config (reads only the input files' sizes and footers)."""
     store = cfg.store_path
-    files = preflight(cfg)["files"]
+    files = [f for fs in preflight(cfg)["files"] for f in fs]
     fingerprint = fingerprint_files(files)
-    ingest_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(), "edges": cfg.edges_path})
+    window = cfg.input.time_window()
+    inp = cfg.input
+    windowed = any(v is not None for v in (inp.since, inp.until, inp.last_days, inp.half_life_days))
+    ingest_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(exclude={"tables"}),
+                         "tables": [t.model_dump() for t in cfg.tables()], "window": window if windowed else None})
     walks_key = digest({"ingest": ingest_key, "walks": cfg.walks.model_dump()})
     train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads"})})
     work = store / "work"
@@ -48,6 +55,7 @@ def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
         "walks_dir": str(work / f"walks-{walks_key}"),
         "train_dir": str(work / f"train-{train_key}"),
         "params": cfg.to_public_dict(),
+        "window": {k: (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in window.items()},
     }
 
 
@@ -57,9 +65,13 @@ def stage_ingest(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     if (out / "ingest.json").exists():
         return {**read_json(out / "ingest.json"), "skipped": True}
     shutil.rmtree(out, ignore_errors=True)  # leftovers of a dead run
-    inp = cfg.input
-    return ingest_edges(cfg.edges_path, out, source=inp.source, target=inp.target, weight=inp.weight,
-                        directed=inp.directed)
+    window = {k: (datetime.fromisoformat(v) if isinstance(v, str) else v) for k, v in plan["window"].items()}
+    if cfg.input.hash_ids:  # fail before the long stages, not at publish
+        from .ids import salt_from_env
+
+        salt_from_env(cfg.input.hash_salt_env)
+    return ingest_tables(cfg.tables(), out, directed=cfg.input.directed, drop_null_ids=cfg.input.drop_null_ids,
+                         window=window)
 
 
 def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
@@ -95,6 +107,7 @@ def stage_train(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
 
     out = Path(plan["train_dir"])
     done = out / "train.json"
+    fault_point("train")
     if done.exists():
         return {**read_json(done), "skipped": True}
     t0 = time.perf_counter()
@@ -117,23 +130,49 @@ def stage_train(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
 
 
 def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict) -> int:
-    """Publish the trained vectors as a new current version; returns its number."""
-    from .store import publish_embeddings, store_lock
+    """Publish the trained vectors as a new current version; returns its number.
 
-    nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet", columns=["node_idx", "node_id"])
+    The caller holds the store lock (see :func:`run_lock`).
+    """
+    from .ids import hash_ids, salt_from_env
+    from .store import publish_embeddings
+
+    nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
     idx = nodes.column("node_idx").to_numpy()
     if not np.array_equal(idx, np.arange(idx.size)):
         raise RuntimeError("node dictionary is not in node_idx order")
+    node_ids = nodes.column("node_id").combine_chunks()
+    if cfg.input.hash_ids:
+        node_ids = hash_ids(node_ids, salt_from_env(cfg.input.hash_salt_env))
     vectors = np.load(train["vectors"], mmap_mode="r")
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
     timings = {name: (0.0 if stage.get("skipped") else stage["seconds"])
                for name, stage in (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train))}
     metrics = {"train_tokens_per_second": train["tokens_per_second"]}
-    with store_lock(plan["store"]):
-        return publish_embeddings(plan["store"], nodes.column("node_id").combine_chunks(), np.asarray(vectors),
-                                  params=plan["params"], fingerprint=plan["fingerprint"], counts=counts,
-                                  timings=timings, metrics=metrics, objective=cfg.train.objective)
+    lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
+               "hashed_ids": cfg.input.hash_ids}
+    fault_point("publish")
+    return publish_embeddings(plan["store"], node_ids, np.asarray(vectors),
+                              node_kinds=nodes.column("node_kind").combine_chunks(),
+                              params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"],
+                              counts=counts, timings=timings, metrics=metrics, objective=cfg.train.objective)
+
+
+@contextmanager
+def run_lock(cfg: RefreshConfig):
+    """Hold the store's writer lock for a whole run and clear what dead runs left behind."""
+    from .store import clean_stale, store_lock
+
+    with store_lock(cfg.store_path):
+        clean_stale(cfg.store_path)
+        yield
+
+
+def fault_point(stage: str) -> None:
+    """Test hook: ``GRAPHKIT_FAULT=<stage>`` kills this process with SIGKILL here, as a machine dying would."""
+    if os.environ.get("GRAPHKIT_FAULT") == stage:
+        os.kill(os.getpid(), signal.SIGKILL)
 
 
 def finish_run(plan: dict) -> None:
@@ -145,10 +184,11 @@ def finish_run(plan: dict) -> None:
 def refresh(cfg: RefreshConfig) -> int:
     """Run every stage in order without Prefect (what the flow does, for notebooks and tests)."""
     plan = plan_run(cfg)
-    ingest = stage_ingest(cfg, plan)
-    graph = stage_graph(cfg, plan)
-    walks = stage_walks(cfg, plan)
-    train = stage_train(cfg, plan)
-    version = stage_publish(cfg, plan, ingest, graph, walks, train)
-    finish_run(plan)
+    with run_lock(cfg):
+        ingest = stage_ingest(cfg, plan)
+        graph = stage_graph(cfg, plan)
+        walks = stage_walks(cfg, plan)
+        train = stage_train(cfg, plan)
+        version = stage_publish(cfg, plan, ingest, graph, walks, train)
+        finish_run(plan)
     return version

@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import re
 from functools import lru_cache
 from pathlib import Path
 
 import duckdb
 
-__all__ = ["SQL_DIR", "load_sql", "work_connection", "quote_ident"]
+__all__ = ["SQL_DIR", "load_sql", "work_connection", "quote_ident", "sql_literal", "bind"]
 
 SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
 
@@ -16,6 +17,18 @@ SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
 def load_sql(name: str) -> str:
     """The text of ``sql/<name>.sql`` (``name`` may contain a sub-folder, e.g. ``checks/edge_counts``)."""
     return (SQL_DIR / f"{name}.sql").read_text()
+
+
+_PARAM = re.compile(r"\$([A-Za-z_][A-Za-z0-9_]*)")
+
+
+def bind(sql: str, params: dict) -> dict:
+    """The subset of ``params`` that ``sql`` names as ``$name`` (DuckDB rejects unused named parameters)."""
+    wanted = set(_PARAM.findall(sql))
+    missing = wanted - set(params)
+    if missing:
+        raise KeyError(f"SQL needs parameters {sorted(missing)}")
+    return {k: v for k, v in params.items() if k in wanted}
 
 
 def quote_ident(name: str) -> str:
@@ -36,3 +49,8 @@ def work_connection(temp_dir: Path | None = None, *, threads: int | None = None,
         con.execute("set memory_limit = $m", {"m": memory_limit})
     con.execute("set preserve_insertion_order = false")
     return con
+
+
+def sql_literal(text: str) -> str:
+    """A SQL string literal (for the few places DuckDB cannot bind a parameter: view bodies, projections)."""
+    return "'" + str(text).replace("'", "''") + "'"

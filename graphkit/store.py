@@ -33,7 +33,7 @@ import pyarrow.parquet as pq
 from .errors import StoreError
 from .sql import load_sql
 
-__all__ = ["connect", "publish_embeddings", "list_versions", "read_version", "store_lock", "CATALOG"]
+__all__ = ["connect", "publish_embeddings", "list_versions", "read_version", "store_lock", "clean_stale", "CATALOG"]
 
 CATALOG = "catalog.duckdb"
 _LOCK = ".lock"
@@ -157,7 +157,8 @@ def read_version(store, version: int | None = None) -> tuple[pa.Array, np.ndarra
     return table.column("node_id").combine_chunks(), vec.flatten().to_numpy().reshape(-1, dim)
 
 
-def _write_version_file(store: Path, version: int, node_ids: pa.Array, vectors: np.ndarray) -> str:
+def _write_version_file(store: Path, version: int, node_ids: pa.Array, vectors: np.ndarray,
+                        node_kinds: pa.Array | None = None) -> str:
     final_dir = store / _version_dir(version)
     tmp_dir = store / "versions" / f".tmp-{version:06d}-{os.getpid()}"
     if final_dir.exists():  # a dead run renamed its file but never reached the catalog: not visible, replace it
@@ -166,12 +167,32 @@ def _write_version_file(store: Path, version: int, node_ids: pa.Array, vectors: 
     tmp_dir.mkdir(parents=True, mode=0o755)
     n, dim = vectors.shape
     flat = pa.array(np.ascontiguousarray(vectors, dtype=np.float32).reshape(-1))
-    table = pa.table({"node_id": node_ids, "vector": pa.FixedSizeListArray.from_arrays(flat, dim)})
+    kinds = node_kinds if node_kinds is not None else pa.array(["node"] * n, pa.string())
+    table = pa.table({"node_id": node_ids, "node_kind": kinds.cast(pa.string()),
+                      "vector": pa.FixedSizeListArray.from_arrays(flat, dim)})
     pq.write_table(table, tmp_dir / "embeddings.parquet", compression="zstd", row_group_size=100_000)
     with open(tmp_dir / "embeddings.parquet", "rb") as fh:
         os.fsync(fh.fileno())
     os.replace(tmp_dir, final_dir)
     return f"{_version_dir(version)}/embeddings.parquet"
+
+
+def clean_stale(store) -> list[str]:
+    """Remove what a killed writer left behind: temporary version folders, catalog copies, stage scratch.
+
+    Call it only while holding :func:`store_lock`. Returns the removed paths.
+    """
+    store = Path(store)
+    removed = []
+    for p in list(store.glob("versions/.tmp-*")) + list(store.glob(f".{CATALOG}.tmp-*")) \
+            + list(store.glob("work/*/duckdb_tmp")) + list(store.glob("work/*/*.tmp-*")) \
+            + list(store.glob("work/*/.*.tmp")):
+        if p.is_dir() and not p.is_symlink():
+            shutil.rmtree(p, ignore_errors=True)
+        else:
+            p.unlink(missing_ok=True)
+        removed.append(str(p))
+    return removed
 
 
 def _next_version(catalog: Path) -> int:
@@ -216,7 +237,7 @@ def _rebuild_catalog(store: Path, row: dict[str, Any], make_current: bool) -> No
 
 def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params: dict, fingerprint: list,
                        counts: dict, timings: dict, metrics: dict | None = None,
-                       objective: str | None = None) -> int:
+                       objective: str | None = None, node_kinds: pa.Array | None = None) -> int:
     """Publish a complete new version and make it current.
 
     Parameters
@@ -225,6 +246,8 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
         The store folder (created if needed).
     node_ids : pyarrow.Array, length n_nodes
         Original node ids in the input's own type, in node_idx order.
+    node_kinds : pyarrow.Array of str, length n_nodes, optional
+        The kind of each node (default ``"node"``).
     vectors : ndarray of float32, shape (n_nodes, dim)
     params, fingerprint, counts, timings, metrics : JSON-serialisable
         Recorded in the version's catalog row.
@@ -242,7 +265,7 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
     store.mkdir(parents=True, exist_ok=True, mode=0o755)
     t0 = time.perf_counter()
     version = _next_version(store / CATALOG)
-    rel_path = _write_version_file(store, version, node_ids, vectors)
+    rel_path = _write_version_file(store, version, node_ids, vectors, node_kinds)
     timings = {**timings, "publish": round(time.perf_counter() - t0, 3)}
     row = {
         "version": version, "created_at": datetime.now(timezone.utc).replace(tzinfo=None),

@@ -1,12 +1,12 @@
 -- edge_index: the adjacency in dense indices, ready to become CSR arrays.
 -- grain: one row per stored adjacency entry (src_idx, dst_idx); an undirected edge appears in both directions.
--- inputs: tables edges(src, dst, weight, n_rows) and nodes(node_idx, node_id).
+-- inputs: tables edges and nodes (see edges.sql, nodes.sql).
 -- params: $directed (boolean).
 with pairs as (
     select s.node_idx as src_idx, d.node_idx as dst_idx, e.weight
     from edges as e
-    join nodes as s on e.src = s.node_id
-    join nodes as d on e.dst = d.node_id
+    join nodes as s on e.src_kind = s.node_kind and e.src = s.node_id
+    join nodes as d on e.dst_kind = d.node_kind and e.dst = d.node_id
 ),
 
 both_directions as (

@@ -1,16 +1,18 @@
 -- nodes: the dense node dictionary.
--- grain: one row per distinct node id seen in edges; node_idx is 0..n_nodes-1 in id order (deterministic).
--- inputs: table edges(src, dst, weight, n_rows).
+-- grain: one row per distinct (node_kind, node_id) seen in edges; node_idx is 0..n_nodes-1 in (kind, id) order,
+--        so the same input gives the same indices.
+-- inputs: table edges (see edges.sql).
 -- params: none.
 with ids as (
-    select src as node_id from edges
+    select src_kind as node_kind, src as node_id from edges
     union
-    select dst as node_id from edges
+    select dst_kind as node_kind, dst as node_id from edges
 ),
 
 final as (
     select
-        (row_number() over (order by node_id) - 1)::integer as node_idx,
+        (row_number() over (order by node_kind, node_id) - 1)::integer as node_idx,
+        node_kind,
         node_id
     from ids
 )

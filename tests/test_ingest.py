@@ -21,7 +21,7 @@ def _write(path, **cols):
 def _ingest(tmp_path, edges, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", GraphDataWarning)
-        info = ingest_edges(edges, tmp_path / "out", **kw)
+        info = ingest_edges(edges, tmp_path / "out", drop_null_ids=True, **kw)
     graph = CSRGraph.load(tmp_path / "out" / "graph")
     ids = pq.read_table(tmp_path / "out" / "nodes.parquet").column("node_id").to_pylist()
     return info, graph, ids
@@ -81,7 +81,7 @@ def test_warns_with_counts(tmp_path):
     path = _write(tmp_path / "t.parquet", s=["a", "a", "b", "c"], t=["b", "b", "b", None])
     with pytest.warns(GraphDataWarning, match="1 rows with a null id dropped, 1 self-loops dropped, "
                                                "1 duplicate edges merged"):
-        ingest_edges(path, tmp_path / "out", source="s", target="t")
+        ingest_edges(path, tmp_path / "out", source="s", target="t", drop_null_ids=True)
 
 
 @pytest.mark.parametrize("case, match", [

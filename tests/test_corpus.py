@@ -1,0 +1,241 @@
+"""Walk corpus on disk: Dask shards equal the in-process walks, reruns skip finished shards, chunked reading."""
+
+from __future__ import annotations
+
+import fcntl
+import json
+import os
+
+import networkx as nx
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from conftest import graph_from_nx
+
+from graphkit import corpus as gc
+from graphkit.corpus import WalkCorpus, plan_shards, write_walk_corpus
+from graphkit.errors import ConfigError
+from graphkit.graph import CSRGraph
+from graphkit.walks import count_visits, random_walks
+
+PER_NODE, LENGTH, SEED = 4, 7, 3
+
+
+@pytest.fixture(scope="module")
+def graph_dir(tmp_path_factory):
+    """A directed random graph (networkx gnm generator) with sinks, so that the corpus has -1 padding."""
+    g = graph_from_nx(nx.gnm_random_graph(300, 700, seed=1, directed=True))
+    assert (g.degrees() == 0).any()
+    return g.save(tmp_path_factory.mktemp("graph") / "g")
+
+
+@pytest.fixture(scope="module")
+def reference(graph_dir):
+    """The same corpus computed in one process, in memory."""
+    return random_walks(CSRGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=1)
+
+
+def read_all(corpus_dir, **kwargs):
+    return np.concatenate(list(WalkCorpus(corpus_dir, **kwargs)))
+
+
+def file_ids(corpus_dir):
+    """(inode, mtime_ns) of every shard file: changes whenever a file is rewritten (write + rename)."""
+    return {p.name: (p.stat().st_ino, p.stat().st_mtime_ns) for p in sorted(corpus_dir.glob("shard-*"))}
+
+
+# ------------------------------------------------------------------------------------------ same walks everywhere
+@pytest.mark.parametrize("n_shards, n_workers", [(1, 1), (3, 2), (7, 1), (7, 2)])
+def test_corpus_equals_random_walks(graph_dir, reference, tmp_path, n_shards, n_workers):
+    manifest = write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED,
+                                 n_shards=n_shards, n_workers=n_workers)
+    assert read_all(tmp_path / "c").tobytes() == reference.tobytes()
+    assert reference.tobytes() == random_walks(CSRGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=2).tobytes()
+    n_tokens = int((reference >= 0).sum())
+    assert n_tokens < reference.size  # the sinks produce padding, which is not counted
+    assert {k: manifest[k] for k in ("n_nodes", "n_walks", "length", "n_tokens", "per_node", "seed")} == {
+        "n_nodes": 300, "n_walks": 1200, "length": LENGTH, "n_tokens": n_tokens, "per_node": PER_NODE, "seed": SEED}
+    assert [(s["start"], s["stop"]) for s in manifest["shards"]] == plan_shards(1200, 1, n_shards)
+    assert json.loads((tmp_path / "c" / "manifest.json").read_text()) == manifest
+    corpus = WalkCorpus(tmp_path / "c")
+    assert (len(corpus), corpus.n_walks, corpus.length, corpus.n_tokens, corpus.n_nodes) == (
+        1200, 1200, LENGTH, n_tokens, 300)
+    np.testing.assert_array_equal(corpus.visit_counts(), count_visits(reference, 300))
+
+
+def test_different_seed_gives_different_corpus(graph_dir, reference, tmp_path):
+    write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED + 1, n_shards=2)
+    other = read_all(tmp_path / "c")
+    assert other.shape == reference.shape
+    assert (other[:, 0] != reference[:, 0]).mean() > 0.9  # start orders differ
+
+
+def test_process_cluster_gives_same_walks(graph_dir, reference, tmp_path):
+    # Two worker processes: each task memory-maps the graph from graph_dir and writes its own shard.
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc:
+        with distributed.Client(lc) as client:
+            pids = set(client.run(os.getpid).values())
+        manifest = write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED,
+                                     n_shards=4, dask_address=lc.scheduler_address)
+    assert os.getpid() not in pids and len(pids) == 2
+    assert manifest["n_walks"] == 1200
+    assert read_all(tmp_path / "c").tobytes() == reference.tobytes()
+
+
+# ------------------------------------------------------------------------------------------ reruns and failures
+def test_rerun_rewrites_only_incomplete_shards(graph_dir, reference, tmp_path):
+    out = tmp_path / "c"
+    first = write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=4)
+    before = file_ids(out)
+    (out / "shard-00002.parquet").unlink()  # shard 2 is now incomplete (its counts file alone does not count)
+    (out / "shard-00001.parquet.tmp-deadbeef").write_bytes(b"half a file from a crashed run")
+    second = write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED)  # default n_shards
+    after = file_ids(out)
+    assert second == first
+    assert set(after) == set(before)  # the stale temp file is gone, nothing else appeared
+    changed = {name for name in after if after[name] != before[name]}
+    assert changed == {"shard-00002.parquet", "shard-00002.counts.npy"}
+    assert read_all(out).tobytes() == reference.tobytes()
+
+
+def test_failed_shard_publishes_nothing(graph_dir, reference, tmp_path):
+    out = tmp_path / "c"
+    write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=3)
+    (out / "manifest.json").unlink()
+    (out / "shard-00001.parquet").unlink()
+    (out / "shard-00001.parquet").mkdir()  # the rename into place will fail
+    before = file_ids(out)
+    with pytest.raises(OSError):
+        write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED)
+    assert not (out / "manifest.json").exists()
+    after = file_ids(out)
+    # only the failed shard's counts file may have been replaced (it is renamed first); shard 1 stays incomplete
+    assert {n for n in after if after[n] != before[n]} <= {"shard-00001.counts.npy"}
+    assert set(after) == set(before) and not list(out.glob("*.tmp-*"))
+    with pytest.raises(ConfigError, match="manifest.json' not found"):
+        WalkCorpus(out)
+    (out / "shard-00001.parquet").rmdir()
+    write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED)
+    assert read_all(out).tobytes() == reference.tobytes()
+
+
+@pytest.mark.parametrize("change, match", [
+    (dict(seed=SEED + 1), r"another seed \(3, now 4\)"),
+    (dict(length=LENGTH + 1), r"another length"),
+    (dict(n_shards=3), r"another bounds"),
+])
+def test_corpus_of_other_parameters_is_left_alone(graph_dir, tmp_path, change, match):
+    out = tmp_path / "c"
+    write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=2)
+    before, manifest = file_ids(out), (out / "manifest.json").read_bytes()
+    args = dict(per_node=PER_NODE, length=LENGTH, seed=SEED) | change
+    with pytest.raises(ConfigError, match=match):
+        write_walk_corpus(graph_dir, out, **args)
+    assert file_ids(out) == before and (out / "manifest.json").read_bytes() == manifest
+
+
+def test_rebuilt_graph_is_refused(tmp_path, two_cliques):
+    two_cliques.save(tmp_path / "g")
+    write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=2, length=5, seed=0)
+    os.utime(tmp_path / "g" / "indices.npy", ns=(1, 1))
+    with pytest.raises(ConfigError, match=r"another graph"):
+        write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=2, length=5, seed=0)
+
+
+def test_foreign_shard_files_are_refused(graph_dir, tmp_path):
+    (tmp_path / "c").mkdir()
+    (tmp_path / "c" / "shard-00000.parquet").write_bytes(b"")
+    with pytest.raises(ConfigError, match=r"holds shard files but no plan.json"):
+        write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED)
+
+
+def test_concurrent_run_is_refused(graph_dir, tmp_path):
+    out = tmp_path / "c"
+    out.mkdir()
+    fd = os.open(out / ".lock", os.O_RDWR | os.O_CREAT)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)  # what another run holds while writing
+        with pytest.raises(ConfigError, match=r"being written by another run"):
+            write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED)
+    finally:
+        os.close(fd)
+    assert not (out / "plan.json").exists()
+
+
+# ------------------------------------------------------------------------------------------ layout and reading
+def test_parquet_layout_and_chunks(graph_dir, reference, tmp_path, monkeypatch):
+    assert 100_000 <= gc.ROW_GROUP_WALKS <= 250_000
+    monkeypatch.setattr(gc, "ROW_GROUP_WALKS", 250)  # in-process cluster: the driver passes it to the tasks
+    out = tmp_path / "c"
+    write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=2)
+    pf = pq.ParquetFile(out / "shard-00000.parquet")
+    assert pf.schema_arrow.field("walk").type == pa.list_(pa.int32(), LENGTH)
+    assert [pf.metadata.row_group(i).num_rows for i in range(pf.num_row_groups)] == [250, 250, 100]
+    col = pf.metadata.row_group(0).column(0)
+    assert col.compression == "ZSTD"
+    assert not any("DICTIONARY" in e for e in col.encodings)
+    assert np.load(out / "shard-00001.counts.npy").dtype == np.int64
+
+    corpus = WalkCorpus(out, chunk_walks=100)
+    for _ in range(2):  # re-iterable
+        chunks = list(corpus)
+        assert all(c.dtype == np.int32 and c.flags.c_contiguous and c.shape[0] <= 100 for c in chunks)
+        assert [c.shape[0] for c in chunks[:4]] == [100, 100, 50, 100]  # row group by row group
+        assert np.concatenate(chunks).tobytes() == reference.tobytes()
+    assert max(c.shape[0] for c in WalkCorpus(out, chunk_walks=10_000)) == 250
+
+
+def test_default_shard_plan():
+    for n_walks, threads in [(0, 2), (1, 2), (50, 2), (250_000, 2), (10_000_000, 2), (50_000_000, 4)]:
+        bounds = plan_shards(n_walks, threads)
+        assert bounds[0][0] == 0 and bounds[-1][1] == n_walks
+        assert all(a[1] == b[0] for a, b in zip(bounds, bounds[1:]))
+        sizes = [b - a for a, b in bounds]
+        assert max(sizes) <= gc.MAX_SHARD_WALKS and max(sizes) - min(sizes) <= 1
+        assert len(bounds) <= max(1, gc.SHARDS_PER_THREAD * threads, -(-n_walks // gc.MAX_SHARD_WALKS))
+    assert len(plan_shards(50, 2)) == 1
+    assert len(plan_shards(10_000_000, 2)) == 8
+    assert len(plan_shards(50_000_000, 4)) == 25
+
+
+def test_empty_graph_gives_empty_corpus(tmp_path):
+    CSRGraph.from_edges([], [], n_nodes=0).save(tmp_path / "g")
+    manifest = write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=2, length=5, seed=0)
+    assert (manifest["n_walks"], manifest["n_tokens"]) == (0, 0)
+    assert list(WalkCorpus(tmp_path / "c")) == []
+
+
+# ------------------------------------------------------------------------------------------ bad input
+@pytest.mark.parametrize("kwargs, match", [
+    (dict(per_node=0), r"per_node must be >= 1, got 0"),
+    (dict(length=1), r"length must be >= 2, got 1"),
+    (dict(seed=-5), r"seed must be >= 0, got -5"),
+    (dict(n_shards=0), r"n_shards must be >= 1, got 0"),
+    (dict(n_shards=1201), r"n_shards must be <= 1200, got 1201"),
+    (dict(n_workers=0), r"n_workers must be >= 1, got 0"),
+    (dict(n_workers=2, dask_address="tcp://127.0.0.1:1"), r"n_workers applies to the in-process cluster only"),
+])
+def test_bad_parameters_raise(graph_dir, tmp_path, kwargs, match):
+    args = dict(per_node=PER_NODE, length=LENGTH, seed=SEED) | kwargs
+    with pytest.raises(ConfigError, match=match):
+        write_walk_corpus(graph_dir, tmp_path / "c", **args)
+    assert not (tmp_path / "c").exists()  # nothing was created
+
+
+def test_unreachable_scheduler(graph_dir, tmp_path):
+    dask = pytest.importorskip("dask")
+    with dask.config.set({"distributed.comm.timeouts.connect": "1s"}):
+        with pytest.raises(ConfigError, match=r"cannot reach the Dask scheduler at dask_address='tcp://127.0.0.1:9'"):
+            write_walk_corpus(graph_dir, tmp_path / "c", per_node=1, length=2, seed=0, dask_address="tcp://127.0.0.1:9")
+    assert not (tmp_path / "c").exists()
+
+
+def test_missing_graph_and_corpus(tmp_path):
+    with pytest.raises(ConfigError, match=r"holds no graph \(graph.json is missing\)"):
+        write_walk_corpus(tmp_path / "nope", tmp_path / "c", per_node=1, length=2, seed=0)
+    with pytest.raises(ConfigError, match=r"manifest.json' not found: no complete walk corpus"):
+        WalkCorpus(tmp_path)
+    with pytest.raises(ConfigError, match=r"chunk_walks must be >= 1, got 0"):
+        WalkCorpus(tmp_path, chunk_walks=0)
