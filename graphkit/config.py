@@ -96,6 +96,13 @@ class WalksSection(_Section):
     per_node: int = Field(default=10, ge=1, description="Walks started from every node (one pass each).")
     length: int = Field(default=40, ge=2, description="Nodes per walk, the start node included.")
     seed: int = Field(default=0, ge=0, description="Seed of the walk and training random streams.")
+    weighted: bool = Field(default=True, description="Draw the next node proportionally to edge weight when the "
+                                                     "graph has weights (false: uniform).")
+    p: float = Field(default=1.0, gt=0, description="node2vec return parameter (1 with q = 1: first-order walks).")
+    q: float = Field(default=1.0, gt=0, description="node2vec in-out parameter.")
+    dead_end: Literal["stop", "restart"] = Field(
+        default="stop", description="Directed graphs: at a node with no out-edges stop the walk, or restart it at "
+                                    "its first node.")
 
 
 class TrainSection(_Section):

@@ -24,7 +24,8 @@ from .graph import CSRGraph
 from .io import fingerprint_files, resolve_input_files, write_json_atomic
 from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
 
-__all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "ingest_tables", "ingest_edges"]
+__all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "validate_edge_tables", "ingest_tables",
+           "ingest_edges"]
 
 _HIVE_PART = re.compile(r"^([A-Za-z_][A-Za-z0-9_]*)=(.*)$")
 
@@ -193,6 +194,67 @@ def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: st
     rel.create_view("raw_edges")
 
 
+def _check_rows(con, tables: list[EdgeTable], drop_null_ids: bool, where: str) -> tuple[int, int, int, int]:
+    """Count the rows of ``windowed`` by what ingest does with them; raise on rows it cannot use."""
+    counts = _run(con, "checks/edge_counts", {}).fetchall()[0]
+    n_rows, n_outside, n_null_src, n_null_dst, n_null, n_loops, n_bad_w = (int(c) for c in counts)
+    by_path = {t.path: t for t in tables}
+    if n_null and not drop_null_ids:
+        path, src, _ = con.sql(load_sql("checks/null_ids")).fetchall()[0]
+        t = by_path[path]
+        col = t.source if src is None else t.target
+        raise EdgeTableError(f"{path}: {n_null} of {n_rows} rows have a null id ({n_null_src} in the source, "
+                             f"{n_null_dst} in the target column), e.g. in column {col!r}; set [input] "
+                             f"drop_null_ids = true to drop them")
+    if n_bad_w:
+        ex = con.sql(load_sql("checks/bad_weights")).fetchall()
+        raise EdgeTableError(f"{ex[0][0]}: {n_bad_w} of {n_rows} rows have a null, NaN, infinite, zero or negative "
+                             f"value in weight column {by_path[ex[0][0]].weight!r}, e.g. "
+                             f"{[tuple(r[1:]) for r in ex]}")
+    if n_rows - n_outside - n_null - n_loops <= 0:
+        raise EdgeTableError(f"{where}: no usable edge ({n_rows} rows: {n_outside} outside the time window, "
+                             f"{n_null} with a null id, {n_loops} self-loops); every node would be isolated")
+    return n_rows, n_outside, n_null, n_loops
+
+
+def _window_params(window: dict | None, directed: bool) -> dict:
+    window = window or {}
+    return {"since": window.get("since"), "until": window.get("until"), "as_of": window.get("as_of"),
+            "half_life_days": window.get("half_life_days"), "directed": bool(directed)}
+
+
+def validate_edge_tables(tables, *, drop_null_ids: bool = False, window: dict | None = None) -> dict[str, Any]:
+    """Every check ingest makes on the rows, without building anything: one scan of the tables in DuckDB.
+
+    Run before a refresh starts, so that bad input fails within seconds. Returns the counts
+    (rows, outside_window, null_ids, self_loops) together with :func:`check_edge_tables`' result.
+    """
+    tables = [EdgeTable.of(t) for t in tables]
+    info = check_edge_tables(tables)
+    where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
+    con = work_connection()
+    try:
+        _raw_view(con, tables, info["files"], info["id_type"])
+        sql = load_sql("windowed_edges")
+        con.execute("create temp view windowed as " + _inline_params(sql, _window_params(window, False)))
+        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where)
+    except duckdb.Error as exc:
+        raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
+    finally:
+        con.close()
+    return {**info, "counts": {"rows": n_rows, "outside_window": n_outside, "null_ids": n_null,
+                               "self_loops": n_loops}}
+
+
+def _inline_params(sql: str, params: dict) -> str:
+    """Views cannot take bound parameters: write the (timestamp or null) window bounds in as literals."""
+    for name in ("since", "until"):
+        v = params.get(name)
+        sql = sql.replace(f"${name}::timestamptz", "null::timestamptz" if v is None
+                          else f"{sql_literal(v.isoformat())}::timestamptz")
+    return sql
+
+
 def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: bool = False,
                   window: dict | None = None, threads: int | None = None) -> dict[str, Any]:
     """Read edge tables with DuckDB and write the graph a run works on.
@@ -235,33 +297,15 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     out_dir.mkdir(parents=True, exist_ok=True)
     info = check_edge_tables(tables)
     window = window or {}
-    params = {"since": window.get("since"), "until": window.get("until"), "as_of": window.get("as_of"),
-              "half_life_days": window.get("half_life_days"), "directed": bool(directed)}
+    params = _window_params(window, directed)
     where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
     con = work_connection(out_dir / "duckdb_tmp", threads=threads)
     try:
         _raw_view(con, tables, info["files"], info["id_type"])
         _run(con, "windowed_edges", params, create="temp table windowed")
-        counts = _run(con, "checks/edge_counts", params).fetchall()[0]
-        n_rows, n_outside, n_null_src, n_null_dst, n_null, n_loops, n_bad_w = (int(c) for c in counts)
-        if n_null and not drop_null_ids:
-            ex = con.sql(load_sql("checks/null_ids")).fetchall()
-            t = tables[0] if len(tables) == 1 else None
-            col = (t.source if n_null_src else t.target) if t else "source/target"
-            raise EdgeTableError(f"{ex[0][0] if ex else where}: {n_null} of {n_rows} rows have a null id in column "
-                                 f"{col!r} ({n_null_src} source, {n_null_dst} target); set [input] "
-                                 f"drop_null_ids = true to drop them")
-        if n_bad_w:
-            ex = con.sql(load_sql("checks/bad_weights")).fetchall()
-            wcol = next((t.weight for t in tables if t.path == ex[0][0]), None) if ex else None
-            raise EdgeTableError(f"{ex[0][0] if ex else where}: {n_bad_w} of {n_rows} rows have a null, NaN, "
-                                 f"infinite, zero or negative value in weight column {wcol!r}, e.g. "
-                                 f"{[tuple(r[1:]) for r in ex]}")
+        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where)
         _run(con, "edges", params, create="table edges")
         n_distinct, n_kept = (int(x or 0) for x in con.sql("select count(*), sum(n_rows) from edges").fetchall()[0])
-        if n_distinct == 0:
-            raise EdgeTableError(f"{where}: no usable edge ({n_rows} rows: {n_outside} outside the time window, "
-                                 f"{n_null} with a null id, {n_loops} self-loops); every node would be isolated")
         con.execute("create table nodes as " + load_sql("nodes"))
         n_nodes = int(con.sql("select count(*) from nodes").fetchall()[0][0])
         if n_nodes >= 2**31 - 1:

@@ -22,7 +22,7 @@ import pyarrow.parquet as pq
 
 from .config import RefreshConfig
 from .graph import CSRGraph
-from .ingest import check_edge_tables, ingest_tables
+from .ingest import ingest_tables, validate_edge_tables
 from .io import digest, fingerprint_files, read_json, write_json_atomic
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_walks", "stage_train", "stage_publish",
@@ -30,8 +30,9 @@ __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_walks"
 
 
 def preflight(cfg: RefreshConfig) -> dict[str, Any]:
-    """Checks that must fail within seconds, before any work: input files, their format and columns."""
-    return check_edge_tables(cfg.tables())
+    """Checks that must fail within seconds, before any work: input files, their format, columns and rows."""
+    return validate_edge_tables(cfg.tables(), drop_null_ids=cfg.input.drop_null_ids,
+                                window=cfg.input.time_window())
 
 
 def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
@@ -86,6 +87,13 @@ def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
             "seconds": round(time.perf_counter() - t0, 3)}
 
 
+def _walk_options(w) -> dict:
+    """Walk options beyond DeepWalk's, passed only when they differ from the defaults."""
+    opts = {"weighted": w.weighted, "p": w.p, "q": w.q, "dead_end": w.dead_end}
+    defaults = {"weighted": True, "p": 1.0, "q": 1.0, "dead_end": "stop"}
+    return {k: v for k, v in opts.items() if v != defaults[k]}
+
+
 def stage_walks(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     """Random walks sharded over Dask into the Parquet walk corpus (finished shards are kept on a rerun)."""
     from .corpus import write_walk_corpus
@@ -96,7 +104,8 @@ def stage_walks(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     t0 = time.perf_counter()
     w = cfg.walks
     manifest = write_walk_corpus(Path(plan["ingest_dir"]) / "graph", out, per_node=w.per_node, length=w.length,
-                                 seed=w.seed, dask_address=cfg.dask.address, n_workers=cfg.dask.workers)
+                                 seed=w.seed, dask_address=cfg.dask.address, n_workers=cfg.dask.workers,
+                                 **_walk_options(w))
     return {**manifest, "seconds": round(time.perf_counter() - t0, 3)}
 
 
