@@ -37,6 +37,20 @@ def cmd_refresh(args) -> int:
     return 0
 
 
+def cmd_schedule(args) -> int:
+    from .config import load_config
+    from .pipeline import preflight
+
+    cfg = load_config(args.config, args.set)
+    preflight(cfg)
+    _prefect_env()
+    from flows.nightly import serve_nightly
+
+    serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone, name=args.name,
+                  overrides=list(args.set))
+    return 0
+
+
 def _jsonable(row: dict) -> dict:
     out = {}
     for k, v in row.items():
@@ -146,6 +160,15 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                    help="override a config key (repeatable)")
     r.set_defaults(func=cmd_refresh)
+
+    n = sub.add_parser("schedule", help="serve the refresh as a Prefect deployment on a cron schedule")
+    n.add_argument("config", help="TOML config file")
+    n.add_argument("--cron", default="0 2 * * *", help='cron expression (default "0 2 * * *": 02:00 every day)')
+    n.add_argument("--timezone", default="UTC", help="IANA time zone of the cron expression (default UTC)")
+    n.add_argument("--name", default="nightly-refresh", help="deployment name")
+    n.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                   help="override a config key (repeatable)")
+    n.set_defaults(func=cmd_schedule)
 
     v = sub.add_parser("versions", help="list the versions in a store")
     v.add_argument("store")

@@ -20,6 +20,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import EdgeTableError, GraphDataWarning
+from .faults import fault_point
 from .graph import CSRGraph
 from .io import fingerprint_files, resolve_input_files, write_json_atomic
 from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
@@ -351,6 +352,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     }
     if problems:
         warnings.warn(f"{where}: " + ", ".join(problems), GraphDataWarning, stacklevel=2)
+    fault_point("ingest")  # graph written, completion marker not yet
     write_json_atomic(out_dir / "ingest.json", result)
     return result
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import os
 import shutil
-import signal
 import time
 from datetime import datetime
 from contextlib import contextmanager
@@ -21,6 +20,7 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from .config import RefreshConfig
+from .faults import fault_point
 from .graph import CSRGraph
 from .ingest import ingest_tables, validate_edge_tables
 from .io import digest, fingerprint_files, read_json, write_json_atomic
@@ -87,6 +87,31 @@ def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
             "seconds": round(time.perf_counter() - t0, 3)}
 
 
+#: Bytes per walk token on disk, measured for zstd Parquet on a uniform random graph (stack-facts §5: 3.12 GB per
+#: 1e9 tokens, the worst case); plus a margin for the count files and temporary files.
+CORPUS_BYTES_PER_TOKEN = 3.2
+FREE_SPACE_MARGIN = 1.2
+
+
+def graph_nodes(plan: dict) -> int:
+    return int(read_json(Path(plan["ingest_dir"]) / "graph" / "graph.json")["n_nodes"])
+
+
+def check_free_space(folder, *, n_walks: int, length: int) -> int:
+    """Refuse (``StoreError``) when the disk holding ``folder`` has less room than the walk corpus needs."""
+    from .store import StoreError
+
+    need = int(n_walks * length * CORPUS_BYTES_PER_TOKEN * FREE_SPACE_MARGIN)
+    probe = Path(folder)
+    while not probe.exists():
+        probe = probe.parent
+    free = shutil.disk_usage(probe).free
+    if free < need:
+        raise StoreError(f"{folder}: the walk corpus needs about {need / 1e9:.2f} GB ({n_walks} walks x {length} "
+                         f"nodes) but only {free / 1e9:.2f} GB are free there")
+    return need
+
+
 def _walk_options(w) -> dict:
     """Walk options beyond DeepWalk's, passed only when they differ from the defaults."""
     opts = {"weighted": w.weighted, "p": w.p, "q": w.q, "dead_end": w.dead_end}
@@ -103,6 +128,7 @@ def stage_walks(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
         return {**read_json(out / "manifest.json"), "skipped": True}
     t0 = time.perf_counter()
     w = cfg.walks
+    check_free_space(out, n_walks=w.per_node * graph_nodes(plan), length=w.length)
     manifest = write_walk_corpus(Path(plan["ingest_dir"]) / "graph", out, per_node=w.per_node, length=w.length,
                                  seed=w.seed, dask_address=cfg.dask.address, n_workers=cfg.dask.workers,
                                  **_walk_options(w))
@@ -161,7 +187,6 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     metrics = {"train_tokens_per_second": train["tokens_per_second"]}
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
                "hashed_ids": cfg.input.hash_ids}
-    fault_point("publish")
     return publish_embeddings(plan["store"], node_ids, np.asarray(vectors),
                               node_kinds=nodes.column("node_kind").combine_chunks(),
                               params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"],
@@ -173,15 +198,13 @@ def run_lock(cfg: RefreshConfig):
     """Hold the store's writer lock for a whole run and clear what dead runs left behind."""
     from .store import clean_stale, store_lock
 
-    with store_lock(cfg.store_path):
-        clean_stale(cfg.store_path)
-        yield
-
-
-def fault_point(stage: str) -> None:
-    """Test hook: ``GRAPHKIT_FAULT=<stage>`` kills this process with SIGKILL here, as a machine dying would."""
-    if os.environ.get("GRAPHKIT_FAULT") == stage:
-        os.kill(os.getpid(), signal.SIGKILL)
+    old_mask = os.umask(0o022)  # nothing in the store is world- or group-writable, whatever the caller's umask
+    try:
+        with store_lock(cfg.store_path):
+            clean_stale(cfg.store_path)
+            yield
+    finally:
+        os.umask(old_mask)
 
 
 def finish_run(plan: dict) -> None:

@@ -31,6 +31,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import StoreError
+from .faults import fault_point
 from .sql import load_sql
 
 __all__ = ["connect", "publish_embeddings", "list_versions", "read_version", "store_lock", "clean_stale", "CATALOG"]
@@ -79,6 +80,9 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
     """Open a store's catalog read-only: views ``embeddings`` (current version, or ``version``), ``versions``,
     and ``embeddings_vNNNNNN`` for every complete version.
 
+    The connection is confined to the store folder (``enable_external_access = false`` with
+    ``allowed_directories`` set to the store): queries cannot read or write files elsewhere.
+
     Parameters
     ----------
     store : path
@@ -95,6 +99,10 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
     if not path.exists():
         raise StoreError(f"{store}: no embedding store here (no {CATALOG}); run `graphkit refresh` first")
     con = duckdb.connect(str(path), read_only=True)
+    # Confine the session to the store: no reads or writes elsewhere, no extensions; the setting cannot be
+    # switched back on by a query.
+    con.execute("set allowed_directories = $dirs", {"dirs": [str(Path(store).resolve()) + os.sep]})
+    con.execute("set enable_external_access = false")
     if version is not None:
         rows = con.execute("select path, dim from versions where version = $v and status = 'complete'",
                            {"v": int(version)}).fetchall()
@@ -275,5 +283,6 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
         "counts": json.dumps(counts, default=str), "timings": json.dumps(timings),
         "metrics": json.dumps(metrics or {}), "package_version": _package_version(), "message": None,
     }
+    fault_point("publish")  # version file in place, catalog not yet switched
     _rebuild_catalog(store, row, make_current=True)
     return version

@@ -1,0 +1,245 @@
+"""Bad input, crashes, concurrent writers, disk space and access: exit 2 and one line, nothing lost, nothing let
+through (issue: real production inputs, bad input, crashes and access)."""
+
+import hashlib
+import hmac
+import json
+import os
+import shutil
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import graphkit
+from graphkit.config import load_config
+from graphkit.errors import StoreError
+from graphkit.store import connect, list_versions, store_lock
+
+ROOT = Path(__file__).resolve().parent.parent
+SMALL = dict(per_node=2, length=10, dim=16)
+
+CONFIG = """
+[input]
+edges = "edges.parquet"
+source = "sender"
+target = "receiver"
+weight = "amount"
+drop_null_ids = true
+
+[walks]
+per_node = {per_node}
+length = {length}
+seed = 3
+
+[train]
+dim = {dim}
+
+[store]
+path = "store"
+"""
+
+
+def run_cli(*args, env=None, timeout=300):
+    return subprocess.run([sys.executable, "-m", "graphkit.cli", *map(str, args)], capture_output=True, text=True,
+                          timeout=timeout, cwd=ROOT, env={**os.environ, **(env or {})})
+
+
+def run_plain_refresh(config, env=None, timeout=300):
+    """The pipeline without Prefect in a real subprocess (so SIGKILL hits a separate process)."""
+    code = f"import graphkit; from graphkit.config import load_config; print(graphkit.refresh(load_config({str(config)!r})))"
+    return subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=timeout,
+                          cwd=ROOT, env={**os.environ, **(env or {})})
+
+
+def snapshot(folder):
+    folder = Path(folder)
+    return {str(p.relative_to(folder)): (p.stat().st_size, p.stat().st_mtime_ns)
+            for p in sorted(folder.rglob("*")) if p.is_file() and p.name != ".lock"}
+
+
+@pytest.fixture(scope="module")
+def published(tmp_path_factory):
+    """A folder with the demo transfers, a config, and a store holding version 1 (built without Prefect)."""
+    root = tmp_path_factory.mktemp("faults")
+    shutil.copy(ROOT / "sample_parquet" / "transfers.parquet", root / "edges.parquet")
+    (root / "ok.toml").write_text(CONFIG.format(**SMALL))
+    assert graphkit.refresh(load_config(root / "ok.toml")) == 1
+    return root
+
+
+def _bad_config(root, name, text):
+    p = root / f"{name}.toml"
+    p.write_text(text)
+    return p
+
+
+BAD = {
+    "missing_file": ('edges = "edges.parquet"', 'edges = "nope.parquet"', r"nope\.parquet: file not found"),
+    "empty_glob": ('edges = "edges.parquet"', 'edges = "none/*.parquet"', "no files match"),
+    "misnamed_column": ('source = "sender"', 'source = "sendr"', "did you mean 'sender'"),
+    "unknown_key": ("[train]", "[train]\nwindw = 3", r"unknown key \[train\] windw"),
+    "wrong_type": ("[train]", '[train]\nwindow = "5"', r"\[train\] window: input should be a valid integer"),
+    "window_0": ("[train]", "[train]\nwindow = 0", r"\[train\] window"),
+    "length_1": ("length = 10", "length = 1", r"\[walks\] length"),
+    "dim_0": ("dim = 16", "dim = 0", r"\[train\] dim"),
+    "null_ids": ("drop_null_ids = true", "drop_null_ids = false", "7 of 13537 rows have a null id"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD))
+def test_bad_config_or_input_exits_2_and_changes_nothing(published, case):
+    old, new, match = BAD[case]
+    text = CONFIG.format(**SMALL)
+    assert old in text
+    cfg = _bad_config(published, case, text.replace(old, new, 1))
+    before = snapshot(published / "store")
+    r = run_cli("refresh", cfg)
+    assert r.returncode == 2, r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1 and "Traceback" not in r.stderr
+    import re
+    assert re.search(match, r.stderr), r.stderr
+    assert snapshot(published / "store") == before
+
+
+@pytest.mark.parametrize("kind", ["not_parquet", "bad_weights", "only_self_loops", "empty", "mixed_types"])
+def test_bad_tables_exit_2_and_change_nothing(published, kind):
+    folder = published / f"bad_{kind}"
+    folder.mkdir(exist_ok=True)
+    if kind == "not_parquet":
+        (folder / "edges.parquet").write_text("sender,receiver\n")
+    elif kind == "bad_weights":
+        pq.write_table(pa.table({"sender": ["a", "b"], "receiver": ["b", "c"], "amount": [float("nan"), -1.0]}),
+                       folder / "edges.parquet")
+    elif kind == "only_self_loops":
+        pq.write_table(pa.table({"sender": ["a", "b"], "receiver": ["a", "b"], "amount": [1.0, 1.0]}),
+                       folder / "edges.parquet")
+    elif kind == "empty":
+        pq.write_table(pa.table({"sender": pa.array([], pa.string()), "receiver": pa.array([], pa.string()),
+                                 "amount": pa.array([], pa.float64())}), folder / "edges.parquet")
+    elif kind == "mixed_types":
+        pq.write_table(pa.table({"sender": ["a"], "receiver": ["b"], "amount": [1.0]}), folder / "1.parquet")
+        pq.write_table(pa.table({"sender": [1], "receiver": [2], "amount": [1.0]}), folder / "2.parquet")
+    text = CONFIG.format(**SMALL).replace('edges = "edges.parquet"',
+                                          f'edges = "{folder.name}/*.parquet"').replace('path = "store"',
+                                                                                        'path = "../store"')
+    (folder / "c.toml").write_text(text.replace(f'{folder.name}/*.parquet', "*.parquet"))
+    before = snapshot(published / "store")
+    r = run_cli("refresh", folder / "c.toml")
+    assert r.returncode == 2, r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1 and "Traceback" not in r.stderr
+    assert "parquet" in r.stderr
+    assert snapshot(published / "store") == before
+
+
+@pytest.mark.parametrize("stage", ["ingest", "train", "publish"])
+def test_killed_run_leaves_store_whole_and_next_run_publishes(published, stage):
+    cfg = published / "ok.toml"
+    before_versions = [(v["version"], v["is_current"]) for v in list_versions(published / "store")]
+    r = run_plain_refresh(cfg, env={"GRAPHKIT_FAULT": stage})
+    assert r.returncode == -9, r.stderr  # killed by SIGKILL
+    # readers see exactly the versions that were there
+    assert [(v["version"], v["is_current"]) for v in list_versions(published / "store")] == before_versions
+    r = run_plain_refresh(cfg)
+    assert r.returncode == 0, r.stderr
+    rows = list_versions(published / "store")
+    assert rows[-1]["is_current"] and rows[-1]["status"] == "complete"
+    assert rows[-1]["version"] == before_versions[-1][0] + 1
+    con = connect(published / "store")
+    assert con.sql("select count(*) from embeddings").fetchall()[0][0] == rows[-1]["n_nodes"]
+    con.close()
+    leftovers = [p for p in (published / "store").rglob("*") if ".tmp" in p.name]
+    assert leftovers == []
+    assert list((published / "store" / "work").iterdir()) == []
+
+
+def test_second_writer_refused_and_stale_lock_ignored(published):
+    store = published / "store"
+    with store_lock(store):
+        r = run_cli("refresh", published / "ok.toml")
+        assert r.returncode == 2
+        assert f"another refresh holds the store lock (pid {os.getpid()})" in r.stderr
+    # a lock file left by a dead process (no lock held) is stale: the next run goes ahead
+    (store / ".lock").write_text("999999")
+    n = len(list_versions(store))
+    assert graphkit.refresh(load_config(published / "ok.toml")) == n + 1
+
+
+def test_refuses_when_disk_is_too_small(published, monkeypatch):
+    import graphkit.pipeline as pipeline
+
+    real = shutil.disk_usage
+    monkeypatch.setattr(pipeline.shutil, "disk_usage", lambda p: real(p)._replace(free=1000))
+    before = snapshot(published / "store")
+    with pytest.raises(StoreError, match=r"the walk corpus needs about .* GB .* but only 0.00 GB are free"):
+        graphkit.refresh(load_config(published / "ok.toml"))
+    after = snapshot(published / "store")
+    assert {k: v for k, v in after.items() if not k.startswith("work/")} == before
+
+
+def test_sql_is_confined_to_the_store(published, tmp_path):
+    con = connect(published / "store")
+    with pytest.raises(duckdb.PermissionException):
+        con.sql("select * from read_csv('/etc/passwd')").fetchall()
+    with pytest.raises(duckdb.PermissionException):
+        con.execute(f"copy (select 1) to '{tmp_path / 'out.csv'}'")
+    with pytest.raises(duckdb.Error):
+        con.execute("set enable_external_access = true")
+    assert con.sql("select count(*) from embeddings").fetchall()[0][0] > 0
+    con.close()
+    r = run_cli("sql", published / "store", "select * from read_csv('/etc/passwd')")
+    assert r.returncode == 2 and "Permission" in r.stderr
+
+
+def test_ids_are_bound_never_pasted(published):
+    evil = "x'); drop table versions; --"
+    r = run_cli("similar", published / "store", evil)
+    assert r.returncode == 2 and "is not in the embeddings" in r.stderr
+    assert len(list_versions(published / "store")) >= 1
+
+    # as a real node id, it is just an id
+    root = published / "evil"
+    root.mkdir(exist_ok=True)
+    pq.write_table(pa.table({"sender": [evil, "b", "c"], "receiver": ["b", "c", evil], "amount": [1.0] * 3}),
+                   root / "edges.parquet")
+    (root / "c.toml").write_text(CONFIG.format(**SMALL))
+    graphkit.refresh(load_config(root / "c.toml"))
+    r = run_cli("similar", root / "store", evil, "--json", "--top", "2")
+    assert r.returncode == 0, r.stderr
+    assert {h["node_id"] for h in json.loads(r.stdout)} == {"b", "c"}
+    assert len(list_versions(root / "store")) == 1
+
+
+def test_hashed_ids_and_permissions(published, tmp_path):
+    root = tmp_path / "hashed"
+    root.mkdir()
+    shutil.copy(published / "edges.parquet", root / "edges.parquet")
+    (root / "c.toml").write_text(CONFIG.format(**SMALL).replace("drop_null_ids = true",
+                                                                "drop_null_ids = true\nhash_ids = true"))
+    r = run_plain_refresh(root / "c.toml", env={"GRAPHKIT_ID_SALT": ""})
+    assert r.returncode != 0 and "GRAPHKIT_ID_SALT" in r.stderr
+    r = run_cli("refresh", root / "c.toml", env={"GRAPHKIT_ID_SALT": ""})
+    assert r.returncode == 2 and "GRAPHKIT_ID_SALT" in r.stderr
+    salt = "a-secret-key-of-the-team-0001"
+    code = textwrap.dedent(f"""
+        import os, graphkit
+        from graphkit.config import load_config
+        os.umask(0)  # the store must still come out without group/world write bits
+        graphkit.refresh(load_config({str(root / 'c.toml')!r}))
+    """)
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
+                       env={**os.environ, "GRAPHKIT_ID_SALT": salt})
+    assert r.returncode == 0, r.stderr
+    ids, _ = graphkit.store.read_version(root / "store")
+    raw = sorted(set(pq.read_table(root / "edges.parquet").column("sender").to_pylist()) - {None})
+    expected = {hmac.new(salt.encode(), v.encode(), hashlib.sha256).hexdigest() for v in raw}  # RFC 2104 HMAC
+    assert expected <= set(ids.to_pylist()) and not set(raw) & set(ids.to_pylist())
+    for p in (root / "store").rglob("*"):
+        mode = p.stat().st_mode
+        assert not mode & 0o022, f"{p} is group/world writable: {oct(mode)}"
