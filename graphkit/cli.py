@@ -63,24 +63,26 @@ def cmd_versions(args) -> int:
 
     rows = list_versions(args.store)
     if args.json:
-        out = []
-        for r in rows:
-            r = _jsonable(r)
-            r["created_at"] = r.get("created_at")
-            out.append(r)
-        print(json.dumps(out, indent=2, default=str))
+        print(json.dumps([_jsonable(r) for r in rows], indent=2, default=str))
         return 0
     from rich.console import Console
     from rich.table import Table
 
+    def fmt(v):
+        return f"{v:.3f}" if isinstance(v, float) else str(v)
+
     table = Table(title=f"versions in {args.store}")
-    for col in ("version", "status", "current", "created_at", "nodes", "dim", "objective", "train s"):
-        table.add_column(col)
+    for col in ("version", "status", "current", "pinned", "created (UTC)", "nodes", "dim", "total s", "metrics",
+                "message"):
+        table.add_column(col, overflow="fold")
     for r in rows:
-        table.add_row(str(r["version"]), r["status"], "*" if r["is_current"] else "",
-                      str(r["created_at"])[:19], str(r["n_nodes"]), str(r["dim"]), str(r["objective"]),
-                      str((r.get("timings") or {}).get("train", "")))
-    Console().print(table)
+        metrics = r.get("metrics") or {}
+        total = sum(v for v in (r.get("timings") or {}).values() if isinstance(v, (int, float)))
+        table.add_row(str(r["version"]), r["status"], "*" if r["is_current"] else "", "*" if r["pinned"] else "",
+                      str(r["created_at"])[:19], fmt(r["n_nodes"] or ""), fmt(r["dim"] or ""), f"{total:.1f}",
+                      " ".join(f"{k}={fmt(v)}" for k, v in metrics.items() if not isinstance(v, (dict, list))),
+                      r.get("message") or "")
+    Console(width=max(120, Console().width)).print(table)
     return 0
 
 
@@ -103,20 +105,30 @@ def cmd_export(args) -> int:
     return 0
 
 
-def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None) -> list[tuple]:
-    """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; bound as a parameter)."""
+def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None,
+                  kind: str | None = None) -> list[tuple]:
+    """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; always bound as a parameter).
+
+    Returns (node_id, node_kind, similarity) tuples, most similar first.
+    """
     from .store import connect
 
     con = connect(store, version=version)
     try:
-        found = con.execute("select count(*) from embeddings where node_id::varchar = $id", {"id": node_id}).fetchall()
-        if not found[0][0]:
-            raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings")
+        kinds = [k for (k,) in con.execute(
+            "select node_kind from embeddings where node_id::varchar = $id and ($kind is null or node_kind = $kind)",
+            {"id": node_id, "kind": kind}).fetchall()]
+        if not kinds:
+            raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings"
+                             + (f" as kind {kind!r}" if kind else ""))
+        if len(kinds) > 1:
+            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; pass --kind")
         return con.execute(
-            "with q as (select vector from embeddings where node_id::varchar = $id limit 1) "
-            "select e.node_id, array_cosine_similarity(e.vector, q.vector) as similarity "
-            "from embeddings as e, q where e.node_id::varchar <> $id order by similarity desc, e.node_id limit $k",
-            {"id": node_id, "k": int(top)}).fetchall()
+            "with q as (select vector from embeddings where node_id::varchar = $id and node_kind = $kind) "
+            "select e.node_id, e.node_kind, array_cosine_similarity(e.vector, q.vector) as similarity "
+            "from embeddings as e, q where not (e.node_id::varchar = $id and e.node_kind = $kind) "
+            "order by similarity desc, e.node_id limit $k",
+            {"id": node_id, "kind": kinds[0], "k": int(top)}).fetchall()
     finally:
         con.close()
 
@@ -124,12 +136,52 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
 def cmd_similar(args) -> int:
     if args.top < 1:
         raise InputError(f"--top must be >= 1, got {args.top}")
-    rows = similar_nodes(args.store, args.node_id, args.top, args.version)
+    rows = similar_nodes(args.store, args.node_id, args.top, args.version, args.kind)
     if args.json:
-        print(json.dumps([{"node_id": n, "similarity": round(float(s), 6)} for n, s in rows], default=str))
+        print(json.dumps([{"node_id": n, "node_kind": k, "similarity": round(float(s), 6)} for n, k, s in rows],
+                         default=str))
     else:
-        for n, s in rows:
-            print(f"{n}\t{s:.4f}")
+        for n, k, s in rows:
+            print(f"{n}\t{k}\t{s:.4f}")
+    return 0
+
+
+def cmd_promote(args) -> int:
+    from .store import promote_version
+
+    promote_version(args.store, args.version)
+    print(f"version {args.version} is current")
+    return 0
+
+
+def cmd_pin(args) -> int:
+    from .store import pin_version
+
+    pin_version(args.store, args.version, not args.unpin)
+    print(f"version {args.version} {'unpinned' if args.unpin else 'pinned'}")
+    return 0
+
+
+def cmd_foldin(args) -> int:
+    from .config import load_config
+    from .foldin import fold_in
+
+    cfg = load_config(args.config, args.set)
+    result = fold_in(cfg)
+    print(f"published version {result['version']}: version {result['base_version']} plus "
+          f"{result['foldin_nodes']} provisional vectors ({result['foldin_without_known_neighbours']} new nodes "
+          f"had no known neighbour)")
+    return 0
+
+
+def cmd_features(args) -> int:
+    from .features import export_features
+
+    fmt = "csv" if args.csv or str(args.out).lower().endswith(".csv") else "parquet"
+    r = export_features(args.store, args.entities, args.on, args.out, version=args.version, kind=args.kind,
+                        fmt=fmt)
+    print(f"wrote {r['rows']} rows to {args.out} (version {r['version']}, {r['dim']} columns); "
+          f"{r['without_vector']} entities have no vector (null columns)")
     return 0
 
 
@@ -186,8 +238,35 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("node_id")
     s.add_argument("--top", type=int, default=10)
     s.add_argument("--version", type=int, default=None)
+    s.add_argument("--kind", default=None, help="node kind, when the id exists under several kinds")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_similar)
+
+    pr = sub.add_parser("promote", help="make an older complete version current again")
+    pr.add_argument("store")
+    pr.add_argument("version", type=int)
+    pr.set_defaults(func=cmd_promote)
+
+    pn = sub.add_parser("pin", help="pin a version so that retention never deletes it")
+    pn.add_argument("store")
+    pn.add_argument("version", type=int)
+    pn.add_argument("--unpin", action="store_true", help="remove the pin")
+    pn.set_defaults(func=cmd_pin)
+
+    fi = sub.add_parser("foldin", help="provisional vectors for new nodes from their known neighbours")
+    fi.add_argument("config", help="TOML config file")
+    fi.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE")
+    fi.set_defaults(func=cmd_foldin)
+
+    fe = sub.add_parser("features", help="join vectors onto an entity table as numbered float columns")
+    fe.add_argument("store")
+    fe.add_argument("--entities", required=True, help="entity table (Parquet)")
+    fe.add_argument("--on", required=True, help="entity column holding the node id")
+    fe.add_argument("--out", required=True, help="output file (.parquet, or .csv)")
+    fe.add_argument("--version", type=int, default=None)
+    fe.add_argument("--kind", default=None, help="node kind to match (required when there are several)")
+    fe.add_argument("--csv", action="store_true", help="write CSV instead of Parquet")
+    fe.set_defaults(func=cmd_features)
 
     q = sub.add_parser("sql", help="run a DuckDB query over the store (views embeddings, versions)")
     q.add_argument("store")

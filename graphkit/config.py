@@ -117,6 +117,8 @@ class TrainSection(_Section):
 
 class StoreSection(_Section):
     path: str = Field(description="Folder of the versioned embedding store (relative to the config file).")
+    keep: int = Field(default=14, ge=1, description="Complete versions kept (plus the current and pinned ones).")
+    align: bool = Field(default=True, description="Rotate each new version onto the current one (Procrustes).")
 
 
 class DaskSection(_Section):

@@ -170,7 +170,7 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     The caller holds the store lock (see :func:`run_lock`).
     """
     from .ids import hash_ids, salt_from_env
-    from .store import publish_embeddings
+    from .store import align_to_current, publish_embeddings
 
     nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
     idx = nodes.column("node_idx").to_numpy()
@@ -179,16 +179,21 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     node_ids = nodes.column("node_id").combine_chunks()
     if cfg.input.hash_ids:
         node_ids = hash_ids(node_ids, salt_from_env(cfg.input.hash_salt_env))
-    vectors = np.load(train["vectors"], mmap_mode="r")
+    node_kinds = nodes.column("node_kind").combine_chunks()
+    vectors = np.load(train["vectors"])
+    alignment = {"aligned_to": None}
+    if cfg.store.align:
+        vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors)
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
     timings = {name: (0.0 if stage.get("skipped") else stage["seconds"])
                for name, stage in (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train))}
     metrics = {"train_tokens_per_second": train["tokens_per_second"]}
+    if alignment.get("residual") is not None:
+        metrics["align_residual"] = round(alignment["residual"], 6)
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
-               "hashed_ids": cfg.input.hash_ids}
-    return publish_embeddings(plan["store"], node_ids, np.asarray(vectors),
-                              node_kinds=nodes.column("node_kind").combine_chunks(),
+               "hashed_ids": cfg.input.hash_ids, "alignment": alignment}
+    return publish_embeddings(plan["store"], node_ids, vectors, node_kinds=node_kinds, keep=cfg.store.keep,
                               params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"],
                               counts=counts, timings=timings, metrics=metrics, objective=cfg.train.objective)
 

@@ -2,8 +2,11 @@
 
 Layout of a store folder::
 
-    catalog.duckdb                      versions table, `embeddings` view (current), `embeddings_vNNNNNN` views
-    versions/000001/embeddings.parquet  node_id (the input's own type), vector (fixed-size list of float32)
+    catalog.duckdb                      versions table; views `embeddings` (current) and `embeddings_vNNNNNN`;
+                                        macros `cosine_similarity`, `nearest_neighbours`, `pair_similarity`
+    versions/000001/embeddings.parquet  node_id (the input's own type), node_kind, provisional, vector
+                                        (fixed-size list of float32): the table downstream jobs read
+    versions/000001/embeddings.duckdb   the same rows as a native DuckDB table, attached by `connect` for fast SQL
     work/                               scratch of runs in progress (ingest, graph, walk corpus)
 
 A version becomes visible only when complete. Its Parquet file is written under a temporary name and renamed
@@ -28,6 +31,7 @@ from typing import Any
 import duckdb
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import StoreError
@@ -76,43 +80,73 @@ def store_lock(store):
         os.close(fd)  # closing releases the flock; a killed owner's lock vanishes with its process
 
 
+def _version_files(store: Path, rel_path: str) -> tuple[Path, Path]:
+    parquet = (store / rel_path).resolve()
+    return parquet, parquet.with_suffix(".duckdb")
+
+
 def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
-    """Open a store's catalog read-only: views ``embeddings`` (current version, or ``version``), ``versions``,
-    and ``embeddings_vNNNNNN`` for every complete version.
+    """Open a store's catalog read-only, confined to the store.
+
+    Views: ``embeddings`` (the current version, or ``version``), ``versions``, and ``embeddings_vNNNNNN`` for
+    every kept complete version; macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k)`` and
+    ``pair_similarity(a_id, b_id)``. Each version's native DuckDB copy is attached read-only, so the views scan
+    DuckDB's own storage instead of Parquet (a top-10 query over a million vectors is about ten times faster).
 
     The connection is confined to the store folder (``enable_external_access = false`` with
-    ``allowed_directories`` set to the store): queries cannot read or write files elsewhere.
+    ``allowed_directories`` set to the store): queries cannot read or write files elsewhere, and a query cannot
+    switch the setting back on.
 
     Parameters
     ----------
     store : path
         The store folder.
     version : int, optional
-        Point ``embeddings`` at this version instead of the current one.
+        Point ``embeddings`` at this kept version instead of the current one.
 
     Raises
     ------
     StoreError
-        When the folder holds no catalog, or the version is not a complete one.
+        When the folder holds no catalog, or the version is not a kept complete one.
     """
-    path = Path(store) / CATALOG
+    store = Path(store)
+    path = store / CATALOG
     if not path.exists():
         raise StoreError(f"{store}: no embedding store here (no {CATALOG}); run `graphkit refresh` first")
     con = duckdb.connect(str(path), read_only=True)
-    # Confine the session to the store: no reads or writes elsewhere, no extensions; the setting cannot be
-    # switched back on by a query.
-    con.execute("set allowed_directories = $dirs", {"dirs": [str(Path(store).resolve()) + os.sep]})
-    con.execute("set enable_external_access = false")
-    if version is not None:
-        rows = con.execute("select path, dim from versions where version = $v and status = 'complete'",
-                           {"v": int(version)}).fetchall()
-        if not rows:
-            con.close()
-            raise StoreError(f"{store}: no complete version {version}")
-        rel_path, dim = rows[0]
-        con.execute(load_sql("embeddings").format(
-            kind="temp ", view="embeddings", path=_sql_literal(str((Path(store) / rel_path).resolve())), dim=int(dim)))
+    try:
+        rows = con.execute("select version, path, dim, is_current from versions where status = 'complete' "
+                           "order by version").fetchall()
+        if version is not None and int(version) not in {r[0] for r in rows}:
+            raise StoreError(f"{store}: no complete version {version} (kept: {', '.join(str(r[0]) for r in rows)})")
+        for v, rel_path, dim, is_current in rows:
+            _, native = _version_files(store, rel_path)
+            if not native.exists():
+                continue  # the catalog's own Parquet view stays in use
+            alias = f"v{v:06d}"
+            con.execute(f"attach {_sql_literal(str(native))} as {alias} (read_only)")
+            body = f"select node_id, node_kind, provisional, vector from {alias}.embeddings"
+            con.execute(f"create or replace temp view embeddings_v{v:06d} as {body}")
+            if (version is None and is_current) or v == version:
+                con.execute(f"create or replace temp view embeddings as {body}")
+        if version is not None and not _has_temp_view(con, "embeddings"):
+            rel_path, dim = next((r[1], r[2]) for r in rows if r[0] == version)
+            con.execute(load_sql("embeddings").format(kind="temp ", view="embeddings", dim=int(dim),
+                                                      path=_sql_literal(str(_version_files(store, rel_path)[0]))))
+        con.execute("set allowed_directories = $dirs", {"dirs": [str(store.resolve()) + os.sep]})
+        con.execute("set enable_external_access = false")
+    except BaseException:
+        con.close()
+        raise
     return con
+
+
+def _has_temp_view(con, name: str) -> bool:
+    return bool(con.execute("select count(*) from duckdb_views() where temporary and view_name = $n",
+                            {"n": name}).fetchall()[0][0])
+
+
+_JSON_COLUMNS = ("params", "input_fingerprint", "counts", "timings", "metrics")
 
 
 def _rows_as_dicts(con, query: str, params=None) -> list[dict[str, Any]]:
@@ -121,16 +155,23 @@ def _rows_as_dicts(con, query: str, params=None) -> list[dict[str, Any]]:
     out = []
     for row in res.fetchall():
         d = dict(zip(cols, row))
-        for k, v in d.items():
-            if k in ("params", "input_fingerprint", "counts", "timings", "metrics") and isinstance(v, str):
-                d[k] = json.loads(v)
+        for k in _JSON_COLUMNS:
+            if isinstance(d.get(k), str):
+                d[k] = json.loads(d[k])
         out.append(d)
     return out
 
 
+def _open_catalog(store) -> duckdb.DuckDBPyConnection:
+    path = Path(store) / CATALOG
+    if not path.exists():
+        raise StoreError(f"{store}: no embedding store here (no {CATALOG}); run `graphkit refresh` first")
+    return duckdb.connect(str(path), read_only=True)
+
+
 def list_versions(store) -> list[dict[str, Any]]:
     """Every version in the catalog, oldest first, as dicts (JSON columns decoded)."""
-    con = connect(store)
+    con = _open_catalog(store)
     try:
         return _rows_as_dicts(con, "select * from versions order by version")
     finally:
@@ -138,7 +179,10 @@ def list_versions(store) -> list[dict[str, Any]]:
 
 
 def current_version(store) -> int | None:
-    con = connect(store)
+    """The current version's number, or None when the store has none."""
+    if not (Path(store) / CATALOG).exists():
+        return None
+    con = _open_catalog(store)
     try:
         rows = con.execute("select version from versions where is_current").fetchall()
         return rows[0][0] if rows else None
@@ -146,41 +190,66 @@ def current_version(store) -> int | None:
         con.close()
 
 
-def read_version(store, version: int | None = None) -> tuple[pa.Array, np.ndarray]:
-    """The node ids (Arrow array, the input's own type) and the float32 vectors [n_nodes, dim] of a version."""
-    con = connect(store)
+def _version_row(store, version: int | None) -> dict[str, Any]:
+    con = _open_catalog(store)
     try:
         if version is None:
-            rows = con.execute("select path, dim from versions where is_current").fetchall()
+            rows = _rows_as_dicts(con, "select * from versions where is_current")
         else:
-            rows = con.execute("select path, dim from versions where version = $v and status = 'complete'",
-                               {"v": int(version)}).fetchall()
+            rows = _rows_as_dicts(con, "select * from versions where version = $v", {"v": int(version)})
     finally:
         con.close()
     if not rows:
-        raise StoreError(f"{store}: " + ("no current version" if version is None else f"no complete version {version}"))
-    table = pq.read_table(Path(store) / rows[0][0])
+        raise StoreError(f"{store}: " + ("no current version" if version is None else f"no version {version}"))
+    if rows[0]["status"] != "complete":
+        raise StoreError(f"{store}: version {rows[0]['version']} is {rows[0]['status']}, not complete")
+    return rows[0]
+
+
+def read_table(store, version: int | None = None) -> pa.Table:
+    """A version's table (node_id, node_kind, provisional, vector) as Arrow; the current one by default."""
+    row = _version_row(store, version)
+    return pq.read_table(Path(store) / row["path"])
+
+
+def read_version(store, version: int | None = None) -> tuple[pa.Array, np.ndarray]:
+    """The node ids (Arrow array, the input's own type) and the float32 vectors [n_nodes, dim] of a version."""
+    table = read_table(store, version)
     vec = table.column("vector").combine_chunks()
-    dim = int(rows[0][1])
+    dim = vec.type.list_size
     return table.column("node_id").combine_chunks(), vec.flatten().to_numpy().reshape(-1, dim)
 
 
-def _write_version_file(store: Path, version: int, node_ids: pa.Array, vectors: np.ndarray,
-                        node_kinds: pa.Array | None = None) -> str:
-    final_dir = store / _version_dir(version)
-    tmp_dir = store / "versions" / f".tmp-{version:06d}-{os.getpid()}"
-    if final_dir.exists():  # a dead run renamed its file but never reached the catalog: not visible, replace it
-        shutil.rmtree(final_dir)
-    shutil.rmtree(tmp_dir, ignore_errors=True)
-    tmp_dir.mkdir(parents=True, mode=0o755)
+def _version_table(node_ids, vectors, node_kinds, provisional) -> pa.Table:
     n, dim = vectors.shape
     flat = pa.array(np.ascontiguousarray(vectors, dtype=np.float32).reshape(-1))
     kinds = node_kinds if node_kinds is not None else pa.array(["node"] * n, pa.string())
-    table = pa.table({"node_id": node_ids, "node_kind": kinds.cast(pa.string()),
-                      "vector": pa.FixedSizeListArray.from_arrays(flat, dim)})
+    prov = pa.array(np.zeros(n, bool) if provisional is None else np.asarray(provisional, bool))
+    return pa.table({"node_id": node_ids, "node_kind": kinds.cast(pa.string()), "provisional": prov,
+                     "vector": pa.FixedSizeListArray.from_arrays(flat, dim)})
+
+
+def _write_version_files(store: Path, version: int, table: pa.Table) -> str:
+    """Write a version's Parquet file and native DuckDB copy aside, then rename the folder into place."""
+    final_dir = store / _version_dir(version)
+    tmp_dir = store / "versions" / f".tmp-{version:06d}-{os.getpid()}"
+    if final_dir.exists():  # a dead run renamed its folder but never reached the catalog: not visible, replace it
+        shutil.rmtree(final_dir)
+    shutil.rmtree(tmp_dir, ignore_errors=True)
+    tmp_dir.mkdir(parents=True, mode=0o755)
     pq.write_table(table, tmp_dir / "embeddings.parquet", compression="zstd", row_group_size=100_000)
-    with open(tmp_dir / "embeddings.parquet", "rb") as fh:
-        os.fsync(fh.fileno())
+    dim = table.schema.field("vector").type.list_size
+    con = duckdb.connect(str(tmp_dir / "embeddings.duckdb"))
+    try:
+        con.register("version_rows", table)
+        con.execute(f"create table embeddings as select node_id, node_kind, provisional, "
+                    f"vector::float[{int(dim)}] as vector from version_rows")
+        con.execute("checkpoint")
+    finally:
+        con.close()
+    for name in ("embeddings.parquet", "embeddings.duckdb"):
+        with open(tmp_dir / name, "rb") as fh:
+            os.fsync(fh.fileno())
     os.replace(tmp_dir, final_dir)
     return f"{_version_dir(version)}/embeddings.parquet"
 
@@ -203,18 +272,29 @@ def clean_stale(store) -> list[str]:
     return removed
 
 
-def _next_version(catalog: Path) -> int:
-    if not catalog.exists():
-        return 1
-    con = duckdb.connect(str(catalog), read_only=True)
-    try:
-        return int(con.execute("select coalesce(max(version), 0) + 1 from versions").fetchall()[0][0])
-    finally:
-        con.close()
+def _next_version(con) -> int:
+    return int(con.execute("select coalesce(max(version), 0) + 1 from versions").fetchall()[0][0])
 
 
-def _rebuild_catalog(store: Path, row: dict[str, Any], make_current: bool) -> None:
-    """Copy the catalog, apply one transaction to the copy, rename the copy over the original."""
+def _create_views(con, store: Path) -> None:
+    """(Re)create the Parquet-backed views and the macros from the versions table, inside the caller's
+    transaction: one view per kept complete version, ``embeddings`` for the current one."""
+    for (name,) in con.execute("select view_name from duckdb_views() where not temporary and "
+                               "view_name like 'embeddings%'").fetchall():
+        con.execute(f"drop view {name}")
+    rows = con.execute("select version, path, dim, is_current from versions where status = 'complete'").fetchall()
+    for v, rel_path, dim, is_current in rows:
+        path = _sql_literal(str(_version_files(store, rel_path)[0]))
+        con.execute(load_sql("embeddings").format(kind="", view=f"embeddings_v{v:06d}", path=path, dim=int(dim)))
+        if is_current:
+            con.execute(load_sql("embeddings").format(kind="", view="embeddings", path=path, dim=int(dim)))
+    if any(r[3] for r in rows):
+        con.execute(load_sql("macros"))
+
+
+def _update_catalog(store: Path, apply) -> Any:
+    """Copy the catalog, run ``apply(con)`` and the view rebuild in one transaction on the copy, then rename the
+    copy over the catalog: readers see the old state or the new one, whole. Returns what ``apply`` returns."""
     catalog = store / CATALOG
     tmp = store / f".{CATALOG}.tmp-{os.getpid()}"
     tmp.unlink(missing_ok=True)
@@ -224,28 +304,43 @@ def _rebuild_catalog(store: Path, row: dict[str, Any], make_current: bool) -> No
     try:
         con.execute("begin transaction")
         con.execute(load_sql("versions"))
-        if make_current:
-            con.execute("update versions set is_current = false where is_current")
-        cols = ", ".join(row)
-        con.execute(f"insert into versions ({cols}) values ({', '.join('$' + k for k in row)})", row)
-        if row["status"] == "complete":
-            abs_path = _sql_literal(str((store / row["path"]).resolve()))
-            con.execute(load_sql("embeddings").format(kind="", view=f"embeddings_v{row['version']:06d}",
-                                                      path=abs_path, dim=int(row["dim"])))
-            if make_current:
-                con.execute(load_sql("embeddings").format(kind="", view="embeddings", path=abs_path, dim=int(row["dim"])))
+        result = apply(con)
+        _create_views(con, store)
         con.execute("commit")
         con.execute("checkpoint")
-    finally:
+    except BaseException:
         con.close()
+        tmp.unlink(missing_ok=True)
+        raise
+    con.close()
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
+    fault_point("publish")  # new catalog complete, not yet switched in
     os.replace(tmp, catalog)
+    return result
+
+
+def _row(version: int, status: str, *, params, fingerprint, counts, timings, metrics, objective, message=None,
+         path=None, n_nodes=None, dim=None, is_current=False) -> dict[str, Any]:
+    return {
+        "version": version, "created_at": datetime.now(timezone.utc).replace(tzinfo=None),
+        "status": status, "is_current": is_current, "pinned": False, "path": path,
+        "n_nodes": n_nodes, "dim": dim, "objective": objective,
+        "params": json.dumps(params, default=str), "input_fingerprint": json.dumps(fingerprint, default=str),
+        "counts": json.dumps(counts, default=str), "timings": json.dumps(timings, default=str),
+        "metrics": json.dumps(metrics or {}, default=str), "package_version": _package_version(),
+        "message": message,
+    }
+
+
+def _insert(con, row: dict) -> None:
+    cols = ", ".join(row)
+    con.execute(f"insert into versions ({cols}) values ({', '.join('$' + k for k in row)})", row)
 
 
 def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params: dict, fingerprint: list,
-                       counts: dict, timings: dict, metrics: dict | None = None,
-                       objective: str | None = None, node_kinds: pa.Array | None = None) -> int:
+                       counts: dict, timings: dict, metrics: dict | None = None, objective: str | None = None,
+                       node_kinds: pa.Array | None = None, provisional=None, keep: int | None = None) -> int:
     """Publish a complete new version and make it current.
 
     Parameters
@@ -254,11 +349,16 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
         The store folder (created if needed).
     node_ids : pyarrow.Array, length n_nodes
         Original node ids in the input's own type, in node_idx order.
+    vectors : ndarray of float32, shape (n_nodes, dim)
     node_kinds : pyarrow.Array of str, length n_nodes, optional
         The kind of each node (default ``"node"``).
-    vectors : ndarray of float32, shape (n_nodes, dim)
+    provisional : array_like of bool, length n_nodes, optional
+        Rows whose vector was folded in from neighbours rather than trained (default: none).
     params, fingerprint, counts, timings, metrics : JSON-serialisable
-        Recorded in the version's catalog row.
+        Recorded in the version's catalog row (its lineage).
+    keep : int, optional
+        Retention: keep this many complete versions (plus the current and pinned ones); see
+        :func:`apply_retention`.
 
     Returns
     -------
@@ -272,17 +372,143 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
         raise ValueError("refusing to publish vectors with NaN or infinite values")
     store.mkdir(parents=True, exist_ok=True, mode=0o755)
     t0 = time.perf_counter()
-    version = _next_version(store / CATALOG)
-    rel_path = _write_version_file(store, version, node_ids, vectors, node_kinds)
+    table = _version_table(node_ids, vectors, node_kinds, provisional)
+    catalog = store / CATALOG
+    version = 1
+    if catalog.exists():
+        con = duckdb.connect(str(catalog), read_only=True)
+        try:
+            version = _next_version(con)
+        finally:
+            con.close()
+    rel_path = _write_version_files(store, version, table)
     timings = {**timings, "publish": round(time.perf_counter() - t0, 3)}
-    row = {
-        "version": version, "created_at": datetime.now(timezone.utc).replace(tzinfo=None),
-        "status": "complete", "is_current": True, "path": rel_path,
-        "n_nodes": int(vectors.shape[0]), "dim": int(vectors.shape[1]), "objective": objective,
-        "params": json.dumps(params, default=str), "input_fingerprint": json.dumps(fingerprint, default=str),
-        "counts": json.dumps(counts, default=str), "timings": json.dumps(timings),
-        "metrics": json.dumps(metrics or {}), "package_version": _package_version(), "message": None,
-    }
-    fault_point("publish")  # version file in place, catalog not yet switched
-    _rebuild_catalog(store, row, make_current=True)
+    row = _row(version, "complete", params=params, fingerprint=fingerprint, counts=counts, timings=timings,
+               metrics=metrics, objective=objective, path=rel_path, n_nodes=int(vectors.shape[0]),
+               dim=int(vectors.shape[1]), is_current=True)
+
+    def apply(con):
+        con.execute("update versions set is_current = false where is_current")
+        _insert(con, row)
+
+    _update_catalog(store, apply)
+    if keep is not None:
+        apply_retention(store, keep)
     return version
+
+
+def record_failed_run(store, *, message: str, params: dict, fingerprint: list, counts: dict, timings: dict,
+                      metrics: dict | None = None, objective: str | None = None) -> int:
+    """Record a run that was refused (e.g. by a quality gate) as a ``failed`` version; the current one stays."""
+    store = Path(store)
+    store.mkdir(parents=True, exist_ok=True, mode=0o755)
+
+    def apply(con):
+        version = _next_version(con)
+        _insert(con, _row(version, "failed", params=params, fingerprint=fingerprint, counts=counts,
+                          timings=timings, metrics=metrics, objective=objective, message=message))
+        return version
+
+    return _update_catalog(store, apply)
+
+
+def _check_version(con, store, version: int, *, complete=True) -> None:
+    rows = con.execute("select status from versions where version = $v", {"v": int(version)}).fetchall()
+    if not rows:
+        raise StoreError(f"{store}: no version {version}")
+    if complete and rows[0][0] != "complete":
+        raise StoreError(f"{store}: version {version} is {rows[0][0]}, not a complete version")
+
+
+def promote_version(store, version: int) -> None:
+    """Make an older complete (kept) version current again."""
+    store = Path(store)
+    _open_catalog(store).close()
+
+    def apply(con):
+        _check_version(con, store, version)
+        con.execute("update versions set is_current = (version = $v)", {"v": int(version)})
+
+    _update_catalog(store, apply)
+
+
+def pin_version(store, version: int, pinned: bool = True) -> None:
+    """Pin a version (retention never deletes it) or unpin it."""
+    store = Path(store)
+    _open_catalog(store).close()
+
+    def apply(con):
+        _check_version(con, store, version, complete=False)
+        con.execute("update versions set pinned = $p where version = $v", {"p": bool(pinned), "v": int(version)})
+
+    _update_catalog(store, apply)
+
+
+def apply_retention(store, keep: int) -> list[int]:
+    """Keep the ``keep`` newest complete versions plus the current and pinned ones; mark the others ``expired``.
+
+    Their files are deleted only after the new catalog, which no longer points at them, is in place. Returns
+    the expired version numbers.
+    """
+    if int(keep) < 1:
+        raise StoreError(f"[store] keep must be >= 1, got {keep}")
+    store = Path(store)
+
+    def apply(con):
+        rows = con.execute("select version, path, is_current, pinned from versions where status = 'complete' "
+                           "order by version desc").fetchall()
+        drop = [(v, p) for i, (v, p, cur, pin) in enumerate(rows) if i >= keep and not cur and not pin]
+        for v, _ in drop:
+            con.execute("update versions set status = 'expired' where version = $v", {"v": v})
+        return drop
+
+    drop = _update_catalog(store, apply)
+    for v, rel_path in drop:
+        shutil.rmtree(store / _version_dir(v), ignore_errors=True)
+    return [v for v, _ in drop]
+
+
+def align_to_current(store, node_ids: pa.Array, node_kinds: pa.Array, vectors: np.ndarray,
+                     *, min_shared: int = 2) -> tuple[np.ndarray, dict[str, Any]]:
+    """Rotate new vectors onto the current version by orthogonal Procrustes (Schönemann 1966) on shared nodes.
+
+    Vectors are only defined up to rotation; aligning each version with the previous one keeps downstream
+    models that were trained on last week's vectors usable. Nodes are matched on (node_kind, node_id).
+
+    Returns
+    -------
+    (ndarray of float32, dict)
+        The rotated vectors and ``{"aligned_to", "shared_nodes", "residual", "residual_unaligned"}``;
+        the vectors unchanged and ``{"aligned_to": None, ...}`` when there is nothing to align to.
+    """
+    from .evaluate import procrustes_residual, procrustes_rotation
+
+    cur = current_version(store)
+    info = {"aligned_to": None, "shared_nodes": 0, "residual": None, "residual_unaligned": None}
+    if cur is None:
+        return vectors, info
+    prev = read_table(store, cur)
+    prev_dim = prev.schema.field("vector").type.list_size
+    if prev_dim != vectors.shape[1]:
+        return vectors, {**info, "skipped": f"dimension changed from {prev_dim} to {vectors.shape[1]}"}
+    new_keys = pa.table({"node_kind": node_kinds.cast(pa.string()), "node_id": node_ids,
+                         "new_row": pa.array(np.arange(len(node_ids)))})
+    old_keys = pa.table({"node_kind": prev.column("node_kind"), "node_id": prev.column("node_id"),
+                         "old_row": pa.array(np.arange(prev.num_rows)),
+                         "old_provisional": prev.column("provisional")})
+    try:
+        matched = new_keys.join(old_keys, keys=["node_kind", "node_id"], join_type="inner")
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):  # id types differ between versions
+        return vectors, {**info, "skipped": "node id types differ from the current version"}
+    matched = matched.filter(pc.invert(matched.column("old_provisional")))
+    if matched.num_rows < max(min_shared, 2):
+        return vectors, {**info, "shared_nodes": matched.num_rows}
+    new_rows = matched.column("new_row").to_numpy()
+    old_rows = matched.column("old_row").to_numpy()
+    old_vec = prev.column("vector").combine_chunks().flatten().to_numpy().reshape(-1, prev_dim)[old_rows]
+    new_vec = np.asarray(vectors, dtype=np.float32)
+    rot = procrustes_rotation(old_vec, new_vec[new_rows])
+    aligned = (new_vec.astype(np.float64) @ rot).astype(np.float32)
+    res = procrustes_residual(old_vec, new_vec[new_rows])
+    return aligned, {"aligned_to": int(cur), "shared_nodes": int(new_rows.size),
+                     "residual": float(res["residual"]), "residual_unaligned": float(res["residual_unaligned"])}

@@ -5,7 +5,7 @@
 -- Parquet keeps no fixed list size, so the cast restores FLOAT[dim] for the array_* functions.
 create or replace {kind}view {view} as
 with final as (
-    select node_id, node_kind, vector::float[{dim}] as vector
+    select node_id, node_kind, provisional, vector::float[{dim}] as vector
     from read_parquet({path})
 )
 select * from final

@@ -5,8 +5,9 @@
 create table if not exists versions (
     version integer primary key,
     created_at timestamp not null,
-    status varchar not null,          -- 'complete' or 'failed'
+    status varchar not null,          -- 'complete', 'failed' (refused, e.g. by a quality gate) or 'expired'
     is_current boolean not null,
+    pinned boolean not null default false,  -- retention never expires a pinned version
     path varchar,                     -- the version's Parquet file, relative to the store
     n_nodes bigint,
     dim integer,

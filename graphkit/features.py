@@ -1,0 +1,98 @@
+"""Feature export for downstream models: an entity table with a version's vector spread into numbered columns."""
+
+from __future__ import annotations
+
+import difflib
+import os
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from .errors import EdgeTableError, StoreError
+from .sql import quote_ident, sql_literal
+from .store import _version_files, _version_row
+
+__all__ = ["export_features"]
+
+
+def export_features(store, entities, on: str, out, *, version: int | None = None, kind: str | None = None,
+                    fmt: str = "parquet", prefix: str = "emb_") -> dict[str, Any]:
+    """Write ``entities`` with each row's vector as float columns ``emb_000 … emb_{dim-1}``.
+
+    Entities without a vector keep their row, with nulls in the vector columns. Row order is kept.
+
+    Parameters
+    ----------
+    store : path
+    entities : path
+        A Parquet file (or folder/glob) of entities, e.g. the customers a churn model scores.
+    on : str
+        The entity column holding the node id (compared as text, so int and string ids both match).
+    out : path
+        Output file (Parquet, or CSV with ``fmt="csv"``), written aside and renamed into place.
+    version : int, optional
+        A kept version (default: the current one).
+    kind : str, optional
+        Only nodes of this kind; required when the version holds several kinds.
+
+    Returns
+    -------
+    dict
+        ``rows``, ``with_vector``, ``without_vector``, ``version``, ``dim``.
+    """
+    if fmt not in ("parquet", "csv"):
+        raise StoreError(f"format must be parquet or csv, got {fmt!r}")
+    store = Path(store)
+    row = _version_row(store, version)
+    parquet, native = _version_files(store, row["path"])
+    dim = int(row["dim"])
+    out = Path(out)
+    con = duckdb.connect()
+    try:
+        try:
+            ent = con.read_parquet(str(entities))
+        except duckdb.Error as exc:
+            raise EdgeTableError(f"{entities}: cannot read the entity table ({str(exc).splitlines()[0]})") from None
+        if on not in ent.columns:
+            close = difflib.get_close_matches(on, ent.columns, n=1)
+            hint = f" (did you mean {close[0]!r}?)" if close else f" (columns: {', '.join(ent.columns)})"
+            raise EdgeTableError(f"{entities}: no column {on!r} for --on{hint}")
+        if "__entity_row" in ent.columns or any(c.startswith(prefix) for c in ent.columns):
+            raise EdgeTableError(f"{entities}: columns named {prefix}* would be overwritten; rename them first")
+        ent.project(f"*, row_number() over () as __entity_row").create_view("entities")
+        if native.exists():
+            con.execute(f"attach {sql_literal(str(native))} as version_db (read_only)")
+            con.execute("create view vectors as select node_id, node_kind, vector from version_db.embeddings")
+        else:
+            con.execute(f"create view vectors as select node_id, node_kind, vector::float[{dim}] as vector "
+                        f"from read_parquet({sql_literal(str(parquet))})")
+        kinds = [k for (k,) in con.sql("select distinct node_kind from vectors order by 1").fetchall()]
+        if kind is None and len(kinds) > 1:
+            raise StoreError(f"{store}: version {row['version']} holds nodes of kinds {', '.join(kinds)}; "
+                             "pass --kind")
+        if kind is not None and kind not in kinds:
+            raise StoreError(f"{store}: version {row['version']} has no nodes of kind {kind!r} "
+                             f"(kinds: {', '.join(kinds)})")
+        spread = ", ".join(f"v.vector[{i + 1}] as {prefix}{i:03d}" for i in range(dim))
+        kind_filter = "" if kind is None else "where node_kind = $kind"
+        query = (f"with v as (select node_id::varchar as key, vector from vectors {kind_filter}) "
+                 f"select e.* exclude (__entity_row), {spread} from entities as e "
+                 f"left join v on v.key = e.{quote_ident(on)}::varchar order by e.__entity_row")
+        params = {} if kind is None else {"kind": kind}
+        counts = con.execute(f"with v as (select node_id::varchar as key from vectors {kind_filter}) "
+                             f"select count(*), count(v.key) from entities as e "
+                             f"left join v on v.key = e.{quote_ident(on)}::varchar", params).fetchall()[0]
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
+        rel = con.sql(query, params=params)
+        if fmt == "csv":
+            rel.write_csv(str(tmp))
+        else:
+            rel.write_parquet(str(tmp), compression="zstd")
+        os.replace(tmp, out)
+    finally:
+        con.close()
+    n_rows, n_with = int(counts[0]), int(counts[1])
+    return {"rows": n_rows, "with_vector": n_with, "without_vector": n_rows - n_with,
+            "version": int(row["version"]), "dim": dim}
