@@ -1,6 +1,7 @@
 """The ``graphkit`` command line.
 
-Exit codes: 0 done; 2 bad input or config (one line on stderr naming the file, column or key); 1 anything else.
+Exit codes: 0 done; 2 bad input or config (one line on stderr naming the file, column or key); 3 the run failed a
+quality gate (recorded as a failed version, the current version stays current); 1 anything else.
 """
 
 from __future__ import annotations
@@ -11,7 +12,7 @@ import os
 import sys
 from pathlib import Path
 
-from .errors import InputError, StoreError
+from .errors import GateFailure, InputError, StoreError
 
 __all__ = ["main"]
 
@@ -146,6 +147,26 @@ def cmd_similar(args) -> int:
     return 0
 
 
+def cmd_report(args) -> int:
+    from .report import write_report
+    from .store import list_versions, load_diagnostics, read_version
+
+    rows = list_versions(args.store)
+    current = next((r for r in rows if r["is_current"]), None)
+    vectors, diag = None, {}
+    if current is not None:
+        _, vectors = read_version(args.store)
+        diag = load_diagnostics(args.store, current["version"])
+    labels = diag.get("labels")
+    out = Path(args.out) if args.out else Path(args.store) / "reports" / "report.html"
+    write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
+                 vectors=vectors, labels=None if labels is None else [x or None for x in labels.tolist()],
+                 title=f"graphkit store {Path(args.store).resolve().name}"
+                       + (f": version {current['version']} current" if current else ""))
+    print(f"wrote {out}")
+    return 0
+
+
 def cmd_promote(args) -> int:
     from .store import promote_version
 
@@ -242,6 +263,11 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_similar)
 
+    rp = sub.add_parser("report", help="write an HTML report of a store (plots, metric history, timings)")
+    rp.add_argument("store")
+    rp.add_argument("--out", default=None, help="output HTML file (default STORE/reports/report.html)")
+    rp.set_defaults(func=cmd_report)
+
     pr = sub.add_parser("promote", help="make an older complete version current again")
     pr.add_argument("store")
     pr.add_argument("version", type=int)
@@ -289,6 +315,9 @@ def main(argv=None) -> int:
     except InputError as exc:
         print(f"graphkit: error: {exc}", file=sys.stderr)
         return 2
+    except GateFailure as exc:
+        print(f"graphkit: quality gate: {exc}", file=sys.stderr)
+        return 3
     except KeyboardInterrupt:
         print("graphkit: interrupted", file=sys.stderr)
         return 130

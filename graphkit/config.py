@@ -121,6 +121,35 @@ class StoreSection(_Section):
     align: bool = Field(default=True, description="Rotate each new version onto the current one (Procrustes).")
 
 
+class EvaluateSection(_Section):
+    link_holdout: float = Field(default=0.1, ge=0, lt=0.9, description="Share of edges held out for link "
+                                                                     "prediction before walking (0: no holdout).")
+    publish_holdout_model: bool = Field(default=False, description="Publish the vectors trained on the graph "
+                                                                   "without the held-out edges (saves a second run).")
+    labels: str | None = Field(default=None, description="Parquet table of node labels (several per node allowed).")
+    label_id_column: str = Field(default="node_id", description="Column of the labels table holding the node id.")
+    label_column: str = Field(default="label", description="Column of the labels table holding the label.")
+    label_kind: str | None = Field(default=None, description="Node kind the labelled ids belong to.")
+    ratios: list[float] = Field(default=[0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9],
+                                description="Training shares of the labelled nodes.")
+    repeats: int = Field(default=3, ge=1, description="Random splits per training share.")
+    max_labelled_nodes: int = Field(default=20_000, ge=2, description="Labelled nodes sampled for the evaluation.")
+    drift_sample: int = Field(default=2000, ge=10, description="Query nodes for the neighbour-overlap drift.")
+    seed: int = Field(default=0, ge=0, description="Seed of the holdout and of the evaluation splits.")
+
+
+class GatesSection(_Section):
+    """Quality gates: a run that fails one is recorded as failed and the current version stays current."""
+
+    min_link_auc: float | None = Field(default=None, ge=0, le=1, description="Least link ROC-AUC (cosine).")
+    min_micro_f1: float | None = Field(default=None, ge=0, le=1, description="Least Micro-F1 at 10% labels.")
+    min_macro_f1: float | None = Field(default=None, ge=0, le=1, description="Least Macro-F1 at 10% labels.")
+    max_neighbour_drift: float | None = Field(default=None, ge=0, le=1,
+                                              description="Largest 1 - mean 10-NN overlap with the current version.")
+    max_align_residual: float | None = Field(default=None, ge=0,
+                                             description="Largest Procrustes residual against the current version.")
+
+
 class DaskSection(_Section):
     address: str | None = Field(default=None, description="Scheduler address of an existing Dask cluster.")
     workers: int | None = Field(default=None, ge=1, description="Threads of the local cluster (default: cores).")
@@ -134,6 +163,8 @@ class RefreshConfig(_Section):
     train: TrainSection = TrainSection()
     store: StoreSection
     dask: DaskSection = DaskSection()
+    evaluate: EvaluateSection = EvaluateSection()
+    gates: GatesSection = GatesSection()
     base_dir: str = "."
     source_file: str = "<config>"
 
@@ -150,6 +181,10 @@ class RefreshConfig(_Section):
     def store_path(self) -> Path:
         return Path(_resolve(self.base_dir, self.store.path))
 
+    @property
+    def labels_path(self) -> str | None:
+        return None if self.evaluate.labels is None else _resolve(self.base_dir, self.evaluate.labels)
+
     def to_public_dict(self) -> dict[str, Any]:
         """The resolved parameters as recorded with each version (absolute paths)."""
         d = self.model_dump(exclude={"base_dir", "source_file"})
@@ -157,6 +192,7 @@ class RefreshConfig(_Section):
         for key in ("edges", "source", "target", "weight", "timestamp"):
             d["input"].pop(key, None)
         d["store"]["path"] = str(self.store_path)
+        d["evaluate"]["labels"] = self.labels_path
         return d
 
 
@@ -175,7 +211,10 @@ def _suggest(word: str, options) -> str:
 
 
 def _parse_value(text: str) -> Any:
-    """A ``--set`` value as a TOML value (``32``, ``true``, ``"x"``); bare words stay strings."""
+    """A ``--set`` value as a TOML value (``32``, ``true``, ``"x"``); bare words stay strings, and the bare word
+    ``none`` clears an optional key (TOML itself has no null)."""
+    if text.lower() == "none":
+        return None
     try:
         return tomllib.loads(f"v = {text}")["v"]
     except tomllib.TOMLDecodeError:

@@ -25,3 +25,12 @@ class StoreError(InputError):
 
 class GraphDataWarning(UserWarning):
     """Input that was repaired rather than rejected (duplicates merged, self-loops dropped, ...)."""
+
+
+class GateFailure(Exception):
+    """A run's quality figures failed a configured gate: recorded as a failed version, exit code 3."""
+
+    def __init__(self, message: str, version: int | None = None, metrics: dict | None = None):
+        super().__init__(message)
+        self.version = version
+        self.metrics = metrics or {}

@@ -20,13 +20,14 @@ import numpy as np
 import pyarrow.parquet as pq
 
 from .config import RefreshConfig
+from .errors import GateFailure
 from .faults import fault_point
 from .graph import CSRGraph
 from .ingest import ingest_tables, validate_edge_tables
 from .io import digest, fingerprint_files, read_json, write_json_atomic
 
-__all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_walks", "stage_train", "stage_publish",
-           "finish_run", "refresh", "run_lock", "fault_point"]
+__all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_holdout", "stage_walks", "stage_train",
+           "stage_evaluate", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point"]
 
 
 def preflight(cfg: RefreshConfig) -> dict[str, Any]:
@@ -45,16 +46,35 @@ def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
     windowed = any(v is not None for v in (inp.since, inp.until, inp.last_days, inp.half_life_days))
     ingest_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(exclude={"tables"}),
                          "tables": [t.model_dump() for t in cfg.tables()], "window": window if windowed else None})
-    walks_key = digest({"ingest": ingest_key, "walks": cfg.walks.model_dump()})
-    train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads"})})
     work = store / "work"
+
+    def chain(graph_key: str) -> tuple[str, str]:
+        walks_key = digest({"graph": graph_key, "walks": cfg.walks.model_dump()})
+        train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads"})})
+        return str(work / f"walks-{walks_key}"), str(work / f"train-{train_key}")
+
+    ingest_dir = work / f"ingest-{ingest_key}"
+    walks_dir, train_dir = chain(ingest_key)
+    ev = cfg.evaluate
+    holdout = {}
+    if ev.link_holdout > 0:
+        holdout_key = digest({"ingest": ingest_key, "fraction": ev.link_holdout, "seed": ev.seed})
+        eval_walks, eval_train = chain(holdout_key)
+        holdout = {"holdout_dir": str(work / f"holdout-{holdout_key}"), "eval_walks_dir": eval_walks,
+                   "eval_train_dir": eval_train}
+    graph_dir = str(ingest_dir / "graph")
+    if holdout and ev.publish_holdout_model:  # one run: the published vectors are the evaluated ones
+        graph_dir = str(Path(holdout["holdout_dir"]) / "graph")
+        walks_dir, train_dir = holdout["eval_walks_dir"], holdout["eval_train_dir"]
     return {
         "store": str(store),
         "work": str(work),
         "fingerprint": fingerprint,
-        "ingest_dir": str(work / f"ingest-{ingest_key}"),
-        "walks_dir": str(work / f"walks-{walks_key}"),
-        "train_dir": str(work / f"train-{train_key}"),
+        "ingest_dir": str(ingest_dir),
+        "graph_dir": graph_dir,
+        "walks_dir": walks_dir,
+        "train_dir": train_dir,
+        **holdout,
         "params": cfg.to_public_dict(),
         "window": {k: (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in window.items()},
     }
@@ -119,34 +139,46 @@ def _walk_options(w) -> dict:
     return {k: v for k, v in opts.items() if v != defaults[k]}
 
 
-def stage_walks(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+def _dirs(plan: dict, which: str) -> tuple[str, str, str]:
+    """(graph, walks, train) folders of the published model (``which="published"``) or of the evaluation model
+    trained without the held-out edges (``which="eval"``)."""
+    if which == "published":
+        return plan["graph_dir"], plan["walks_dir"], plan["train_dir"]
+    if which == "eval":
+        return str(Path(plan["holdout_dir"]) / "graph"), plan["eval_walks_dir"], plan["eval_train_dir"]
+    raise ValueError(f"which must be 'published' or 'eval', got {which!r}")
+
+
+def stage_walks(cfg: RefreshConfig, plan: dict, which: str = "published") -> dict[str, Any]:
     """Random walks sharded over Dask into the Parquet walk corpus (finished shards are kept on a rerun)."""
     from .corpus import write_walk_corpus
 
-    out = Path(plan["walks_dir"])
+    graph_dir, walks_dir, _ = _dirs(plan, which)
+    out = Path(walks_dir)
     if (out / "manifest.json").exists():
         return {**read_json(out / "manifest.json"), "skipped": True}
     t0 = time.perf_counter()
     w = cfg.walks
     check_free_space(out, n_walks=w.per_node * graph_nodes(plan), length=w.length)
-    manifest = write_walk_corpus(Path(plan["ingest_dir"]) / "graph", out, per_node=w.per_node, length=w.length,
+    manifest = write_walk_corpus(graph_dir, out, per_node=w.per_node, length=w.length,
                                  seed=w.seed, dask_address=cfg.dask.address, n_workers=cfg.dask.workers,
                                  **_walk_options(w))
     return {**manifest, "seconds": round(time.perf_counter() - t0, 3)}
 
 
-def stage_train(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+def stage_train(cfg: RefreshConfig, plan: dict, which: str = "published") -> dict[str, Any]:
     """Skip-gram over the walk corpus, chunk by chunk; writes ``vectors.npy`` (float32 [n_nodes, dim])."""
     from .corpus import WalkCorpus
     from .train import train_vectors
 
-    out = Path(plan["train_dir"])
+    _, walks_dir, train_dir = _dirs(plan, which)
+    out = Path(train_dir)
     done = out / "train.json"
     fault_point("train")
     if done.exists():
         return {**read_json(done), "skipped": True}
     t0 = time.perf_counter()
-    corpus = WalkCorpus(plan["walks_dir"])
+    corpus = WalkCorpus(walks_dir)
     t = cfg.train
     vectors = train_vectors(corpus, corpus.n_nodes, dim=t.dim, window=t.window, objective=t.objective,
                             negatives=t.negatives, epochs=t.epochs, seed=cfg.walks.seed, threads=t.threads,
@@ -164,13 +196,18 @@ def stage_train(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     return result
 
 
-def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict) -> int:
-    """Publish the trained vectors as a new current version; returns its number.
+def stage_holdout(cfg: RefreshConfig, plan: dict) -> dict[str, Any] | None:
+    """Hold out edges for link prediction (``[evaluate] link_holdout``); None when switched off."""
+    from .quality import make_holdout
 
-    The caller holds the store lock (see :func:`run_lock`).
-    """
+    if not plan.get("holdout_dir"):
+        return None
+    return make_holdout(Path(plan["ingest_dir"]) / "graph", plan["holdout_dir"],
+                        fraction=cfg.evaluate.link_holdout, seed=cfg.evaluate.seed)
+
+
+def _published_ids(cfg: RefreshConfig, plan: dict):
     from .ids import hash_ids, salt_from_env
-    from .store import align_to_current, publish_embeddings
 
     nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
     idx = nodes.column("node_idx").to_numpy()
@@ -179,23 +216,106 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     node_ids = nodes.column("node_id").combine_chunks()
     if cfg.input.hash_ids:
         node_ids = hash_ids(node_ids, salt_from_env(cfg.input.hash_salt_env))
-    node_kinds = nodes.column("node_kind").combine_chunks()
+    return node_ids, nodes.column("node_kind").combine_chunks()
+
+
+def stage_evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict | None = None) -> dict[str, Any]:
+    """Quality figures of the run: link prediction (held-out edges), node classification (labels), drift."""
+    from .quality import evaluate_vectors
+
+    t0 = time.perf_counter()
+    node_ids, node_kinds = _published_ids(cfg, plan)
+    eval_vectors = np.load(eval_train["vectors"]) if eval_train else None
+    metrics = evaluate_vectors(cfg, plan, published_vectors=np.load(train["vectors"]), eval_vectors=eval_vectors,
+                               node_ids=node_ids, node_kinds=node_kinds)
+    return {"metrics": metrics, "seconds": round(time.perf_counter() - t0, 3)}
+
+
+def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict,
+                  evaluation: dict | None = None, holdout: dict | None = None) -> int:
+    """Check the gates and publish the trained vectors as a new current version; returns its number.
+
+    A run that fails a gate is recorded as a ``failed`` version with the reasons and figures, the current
+    version stays current, and :class:`GateFailure` is raised. The caller holds the store lock
+    (see :func:`run_lock`).
+    """
+    from .quality import failed_gates
+    from .store import align_to_current, publish_embeddings, record_failed_run
+
+    node_ids, node_kinds = _published_ids(cfg, plan)
     vectors = np.load(train["vectors"])
     alignment = {"aligned_to": None}
     if cfg.store.align:
         vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors)
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
-    timings = {name: (0.0 if stage.get("skipped") else stage["seconds"])
-               for name, stage in (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train))}
-    metrics = {"train_tokens_per_second": train["tokens_per_second"]}
+    if holdout:
+        counts["link_holdout"] = {k: v for k, v in holdout.items() if k.startswith("n_")}
+    stages = (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train), ("evaluate", evaluation))
+    timings = {name: (0.0 if stage.get("skipped") else stage["seconds"]) for name, stage in stages if stage}
+    metrics = {"train_tokens_per_second": train["tokens_per_second"], **(evaluation or {}).get("metrics", {})}
     if alignment.get("residual") is not None:
         metrics["align_residual"] = round(alignment["residual"], 6)
+    if walks.get("diagnostics"):
+        metrics["walk_diagnostics"] = walks["diagnostics"]
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
                "hashed_ids": cfg.input.hash_ids, "alignment": alignment}
-    return publish_embeddings(plan["store"], node_ids, vectors, node_kinds=node_kinds, keep=cfg.store.keep,
-                              params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"],
-                              counts=counts, timings=timings, metrics=metrics, objective=cfg.train.objective)
+    record = dict(params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"], counts=counts,
+                  timings=timings, metrics=metrics, objective=cfg.train.objective)
+    reasons = failed_gates(metrics, cfg.gates)
+    if reasons:
+        message = "failed quality gates: " + "; ".join(reasons)
+        version = record_failed_run(plan["store"], message=message, **record)
+        _write_reports(cfg, plan, version, graph, walks)
+        raise GateFailure(f"{cfg.store_path}: run recorded as version {version}, not published: "
+                          + "; ".join(reasons), version=version, metrics=metrics)
+    version = publish_embeddings(plan["store"], node_ids, vectors, node_kinds=node_kinds, keep=cfg.store.keep,
+                                 **record)
+    _write_reports(cfg, plan, version, graph, walks, vectors=vectors)
+    return version
+
+
+def _write_reports(cfg: RefreshConfig, plan: dict, version: int, graph: dict, walks: dict, vectors=None) -> None:
+    """The run's HTML report, next to the run in ``STORE/reports/``; a failure here never fails the run."""
+    import logging
+    import warnings
+
+    from .report import write_report
+    from .store import list_versions, save_diagnostics
+
+    try:
+        degrees = CSRGraph.load(Path(plan["ingest_dir"]) / "graph").degrees()
+        visits = None
+        counts_path = Path(plan["walks_dir"])
+        if (counts_path / "manifest.json").exists():
+            from .corpus import WalkCorpus
+
+            visits = WalkCorpus(counts_path).visit_counts()
+        labels = _first_labels(cfg, plan, degrees.size)
+        if vectors is not None:
+            save_diagnostics(plan["store"], version, degrees=degrees, visit_counts=visits, labels=labels)
+        write_report(Path(plan["store"]) / "reports" / f"version-{version:06d}.html", versions=list_versions(
+            plan["store"]), degrees=degrees, visit_counts=visits, vectors=vectors, labels=labels,
+            title=f"graphkit store {Path(plan['store']).name}: version {version}")
+    except Exception as exc:  # noqa: BLE001 - the report is a convenience; the version is what matters
+        logging.getLogger("graphkit").warning("could not write the run report: %s", exc)
+        warnings.warn(f"could not write the run report: {exc}", RuntimeWarning, stacklevel=2)
+
+
+def _first_labels(cfg: RefreshConfig, plan: dict, n_nodes: int):
+    """One label per node (its first), for colouring the report's projection; None without a labels table."""
+    if not cfg.labels_path:
+        return None
+    from .quality import load_labels
+
+    ev = cfg.evaluate
+    idx, labels, _ = load_labels(cfg.labels_path, Path(plan["ingest_dir"]) / "nodes.parquet",
+                                 id_column=ev.label_id_column, label_column=ev.label_column, kind=ev.label_kind)
+    out = np.full(n_nodes, None, dtype=object)
+    keep = idx >= 0
+    for i, lab in zip(idx[keep][::-1], labels[keep][::-1]):  # reversed: the first label per node wins
+        out[i] = lab
+    return out
 
 
 @contextmanager
@@ -214,8 +334,9 @@ def run_lock(cfg: RefreshConfig):
 
 def finish_run(plan: dict) -> None:
     """Remove the run's work folders once its version is published (the walk corpus can be large)."""
-    for key in ("ingest_dir", "walks_dir", "train_dir"):
-        shutil.rmtree(plan[key], ignore_errors=True)
+    for key in ("ingest_dir", "walks_dir", "train_dir", "holdout_dir", "eval_walks_dir", "eval_train_dir"):
+        if plan.get(key):
+            shutil.rmtree(plan[key], ignore_errors=True)
 
 
 def refresh(cfg: RefreshConfig) -> int:
@@ -224,8 +345,20 @@ def refresh(cfg: RefreshConfig) -> int:
     with run_lock(cfg):
         ingest = stage_ingest(cfg, plan)
         graph = stage_graph(cfg, plan)
+        holdout = stage_holdout(cfg, plan)
+        eval_train = None
+        if holdout is not None and not cfg.evaluate.publish_holdout_model:
+            stage_walks(cfg, plan, "eval")
+            eval_train = stage_train(cfg, plan, "eval")
         walks = stage_walks(cfg, plan)
         train = stage_train(cfg, plan)
-        version = stage_publish(cfg, plan, ingest, graph, walks, train)
+        if holdout is not None and cfg.evaluate.publish_holdout_model:
+            eval_train = train  # the published vectors never saw the held-out edges
+        evaluation = stage_evaluate(cfg, plan, train, eval_train)
+        try:
+            version = stage_publish(cfg, plan, ingest, graph, walks, train, evaluation, holdout)
+        except GateFailure:
+            finish_run(plan)  # the run is over and recorded; its scratch is not needed for a resume
+            raise
         finish_run(plan)
     return version

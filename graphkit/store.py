@@ -468,6 +468,56 @@ def apply_retention(store, keep: int) -> list[int]:
     return [v for v, _ in drop]
 
 
+def save_diagnostics(store, version: int, *, degrees, visit_counts=None, labels=None) -> Path:
+    """Per-node figures the report draws later (degree, walk visits, first label), next to a version's table."""
+    path = Path(store) / _version_dir(version) / "diagnostics.npz"
+    arrays = {"degrees": np.asarray(degrees, np.int64)}
+    if visit_counts is not None:
+        arrays["visit_counts"] = np.asarray(visit_counts, np.int64)
+    if labels is not None:
+        arrays["labels"] = np.array(["" if x is None else str(x) for x in labels])
+    tmp = path.with_name(f".diagnostics-{os.getpid()}.npz")
+    np.savez_compressed(tmp, **arrays)
+    os.replace(tmp, path)
+    return path
+
+
+def load_diagnostics(store, version: int) -> dict[str, np.ndarray]:
+    path = Path(store) / _version_dir(version) / "diagnostics.npz"
+    if not path.exists():
+        return {}
+    with np.load(path, allow_pickle=False) as z:
+        return {k: z[k] for k in z.files}
+
+
+def match_current(store, node_ids: pa.Array, node_kinds: pa.Array, dim: int) -> dict[str, Any] | None:
+    """Rows shared with the current version, matched on (node_kind, node_id); trained rows of it only.
+
+    Returns ``{"version", "new_rows", "old_vectors"}`` (``old_vectors[i]`` is the current vector of new row
+    ``new_rows[i]``), or None when there is no current version of the same dimension or the id types differ.
+    """
+    cur = current_version(store)
+    if cur is None:
+        return None
+    prev = read_table(store, cur)
+    if prev.schema.field("vector").type.list_size != dim:
+        return None
+    new_keys = pa.table({"node_kind": node_kinds.cast(pa.string()), "node_id": node_ids,
+                         "new_row": pa.array(np.arange(len(node_ids)))})
+    old_keys = pa.table({"node_kind": prev.column("node_kind"), "node_id": prev.column("node_id"),
+                         "old_row": pa.array(np.arange(prev.num_rows)),
+                         "old_provisional": prev.column("provisional")})
+    try:
+        matched = new_keys.join(old_keys, keys=["node_kind", "node_id"], join_type="inner")
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):  # id types differ between versions
+        return None
+    matched = matched.filter(pc.invert(matched.column("old_provisional")))
+    matched = matched.sort_by("new_row")
+    old_rows = matched.column("old_row").to_numpy()
+    old_vec = prev.column("vector").combine_chunks().flatten().to_numpy().reshape(-1, dim)[old_rows]
+    return {"version": int(cur), "new_rows": matched.column("new_row").to_numpy(), "old_vectors": old_vec}
+
+
 def align_to_current(store, node_ids: pa.Array, node_kinds: pa.Array, vectors: np.ndarray,
                      *, min_shared: int = 2) -> tuple[np.ndarray, dict[str, Any]]:
     """Rotate new vectors onto the current version by orthogonal Procrustes (Schönemann 1966) on shared nodes.
@@ -483,29 +533,13 @@ def align_to_current(store, node_ids: pa.Array, node_kinds: pa.Array, vectors: n
     """
     from .evaluate import procrustes_residual, procrustes_rotation
 
-    cur = current_version(store)
     info = {"aligned_to": None, "shared_nodes": 0, "residual": None, "residual_unaligned": None}
-    if cur is None:
+    match = match_current(store, node_ids, node_kinds, vectors.shape[1])
+    if match is None:
         return vectors, info
-    prev = read_table(store, cur)
-    prev_dim = prev.schema.field("vector").type.list_size
-    if prev_dim != vectors.shape[1]:
-        return vectors, {**info, "skipped": f"dimension changed from {prev_dim} to {vectors.shape[1]}"}
-    new_keys = pa.table({"node_kind": node_kinds.cast(pa.string()), "node_id": node_ids,
-                         "new_row": pa.array(np.arange(len(node_ids)))})
-    old_keys = pa.table({"node_kind": prev.column("node_kind"), "node_id": prev.column("node_id"),
-                         "old_row": pa.array(np.arange(prev.num_rows)),
-                         "old_provisional": prev.column("provisional")})
-    try:
-        matched = new_keys.join(old_keys, keys=["node_kind", "node_id"], join_type="inner")
-    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):  # id types differ between versions
-        return vectors, {**info, "skipped": "node id types differ from the current version"}
-    matched = matched.filter(pc.invert(matched.column("old_provisional")))
-    if matched.num_rows < max(min_shared, 2):
-        return vectors, {**info, "shared_nodes": matched.num_rows}
-    new_rows = matched.column("new_row").to_numpy()
-    old_rows = matched.column("old_row").to_numpy()
-    old_vec = prev.column("vector").combine_chunks().flatten().to_numpy().reshape(-1, prev_dim)[old_rows]
+    if match["new_rows"].size < max(min_shared, 2):
+        return vectors, {**info, "shared_nodes": int(match["new_rows"].size)}
+    cur, new_rows, old_vec = match["version"], match["new_rows"], match["old_vectors"]
     new_vec = np.asarray(vectors, dtype=np.float32)
     rot = procrustes_rotation(old_vec, new_vec[new_rows])
     aligned = (new_vec.astype(np.float64) @ rot).astype(np.float32)

@@ -56,6 +56,11 @@ def test_bad_config_names_the_key(tmp_path, extra, overrides, match):
         load_config(_write(tmp_path, BASE + extra), overrides)
 
 
+def test_none_clears_an_optional_key(tmp_path):
+    cfg = load_config(_write(tmp_path, BASE + "[gates]\nmin_link_auc = 0.9\n"), ["gates.min_link_auc=none"])
+    assert cfg.gates.min_link_auc is None
+
+
 def test_missing_required_and_file(tmp_path):
     with pytest.raises(ConfigError, match=r"missing required key \[store\]"):
         load_config(_write(tmp_path, BASE.split("[store]")[0]))
