@@ -16,6 +16,11 @@ os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 from graphkit.graph import CSRGraph  # noqa: E402
 
 
+#: Overrides that make the demo refresh a quick fixture: fewer, shorter walks, small vectors, no evaluation.
+FAST_DEMO = ["walks.per_node=2", "walks.length=20", "train.dim=16", "evaluate.link_holdout=0", "evaluate.labels=none",
+             "gates.min_link_auc=none", "gates.min_micro_f1=none"]
+
+
 def graph_from_nx(g: nx.Graph) -> CSRGraph:
     """CSR graph over the integer nodes 0..n-1 of a networkx graph (weights from the 'weight' attribute if any)."""
     edges = np.array(list(g.edges()), dtype=np.int64).reshape(-1, 2)

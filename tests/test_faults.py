@@ -41,6 +41,9 @@ seed = 3
 [train]
 dim = {dim}
 
+[evaluate]
+link_holdout = 0
+
 [store]
 path = "store"
 """

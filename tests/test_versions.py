@@ -17,6 +17,7 @@ import pytest
 from scipy.stats import special_ortho_group
 
 import graphkit
+from conftest import FAST_DEMO
 from graphkit.config import load_config
 from graphkit.errors import StoreError
 from graphkit.features import export_features
@@ -34,8 +35,7 @@ def publish(store, ids, vecs, *, kinds=None, keep=None, **kw):
 
 
 def test_lineage_of_a_refresh(tmp_path):
-    cfg = load_config(ROOT / "sample_parquet" / "demo.toml",
-                      [f'store.path="{tmp_path}"', "walks.per_node=2", "train.dim=16"])
+    cfg = load_config(ROOT / "sample_parquet" / "demo.toml", [f'store.path="{tmp_path}"', *FAST_DEMO])
     graphkit.refresh(cfg)
     r = subprocess.run([sys.executable, "-m", "graphkit.cli", "versions", str(tmp_path), "--json"],
                        capture_output=True, text=True, cwd=ROOT)
@@ -44,6 +44,7 @@ def test_lineage_of_a_refresh(tmp_path):
     assert fp["path"].endswith("transfers.parquet")
     assert fp["size"] == (ROOT / "sample_parquet" / "transfers.parquet").stat().st_size and len(fp["tail_sha256"]) == 64
     assert row["params"]["train"]["dim"] == 16 and row["params"]["walks"]["per_node"] == 2  # full resolved config
+    assert row["params"]["evaluate"]["labels"] is None and row["params"]["gates"]["min_link_auc"] is None
     assert row["package_version"] == graphkit_version()
     assert {"rows", "dropped_null_ids", "dropped_self_loops", "merged_duplicates", "nodes", "edges"} <= set(row["counts"])
     assert {"ingest", "walks", "train", "publish"} <= set(row["timings"])
@@ -110,7 +111,7 @@ def test_rotated_copy_aligns_back(tmp_path):
 
 
 def test_refresh_records_alignment_residual(tmp_path):
-    args = [f'store.path="{tmp_path}"', "walks.per_node=3", "train.dim=16"]
+    args = [f'store.path="{tmp_path}"', *FAST_DEMO]
     graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args))
     graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args + ["walks.seed=11"]))
     row = list_versions(tmp_path)[-1]
