@@ -1,0 +1,101 @@
+"""The command line on the demo data, as a user runs it: real subprocesses, the real Prefect flow."""
+
+import json
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "sample_parquet" / "demo.toml"
+
+
+def graphkit(*args, timeout=600):
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    return subprocess.run([sys.executable, "-m", "graphkit.cli", *map(str, args)], capture_output=True, text=True,
+                          timeout=timeout, env=env, cwd=ROOT)
+
+
+def _snapshot(folder):
+    return {p.relative_to(folder): p.stat().st_mtime_ns for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="module")
+def demo_store(tmp_path_factory):
+    store = tmp_path_factory.mktemp("demo") / "store"
+    first = graphkit("refresh", DEMO, "--set", f'store.path="{store}"')
+    assert first.returncode == 0, first.stderr[-3000:]
+    return store, first
+
+
+@pytest.mark.slow
+def test_refresh_publishes_version_1(demo_store):
+    store, first = demo_store
+    assert "published version 1" in first.stdout
+    rows = json.loads(graphkit("versions", store, "--json").stdout)
+    assert len(rows) == 1
+    row = rows[0]
+    assert {"version", "status", "created_at", "metrics"} <= set(row)
+    assert (row["version"], row["status"], row["is_current"]) == (1, "complete", True)
+    assert row["counts"]["dropped_self_loops"] > 0 and row["counts"]["dropped_null_ids"] == 7
+    assert set(row["timings"]) >= {"ingest", "walks", "train", "publish"}
+    assert row["input_fingerprint"][0]["path"].endswith("transfers.parquet")
+    assert not any((store / "work").iterdir())  # scratch removed after publishing
+
+
+@pytest.mark.slow
+def test_similar_export_and_sql(demo_store, tmp_path):
+    store, _ = demo_store
+    node = pq.read_table(ROOT / "sample_parquet" / "labels.parquet").column("account")[0].as_py()
+    out = graphkit("similar", store, node, "--top", "7", "--json")
+    assert out.returncode == 0, out.stderr
+    hits = json.loads(out.stdout)
+    assert len(hits) == 7 and node not in {h["node_id"] for h in hits}
+    sims = [h["similarity"] for h in hits]
+    assert sims == sorted(sims, reverse=True) and -1 <= sims[-1] <= sims[0] <= 1
+
+    dest = tmp_path / "vectors.parquet"
+    assert graphkit("export", store, "--out", dest).returncode == 0
+    t = pq.read_table(dest)
+    assert t.column_names == ["node_id", "node_kind", "vector"] and t.num_rows > 2900
+    assert t.schema.field("node_id").type == pa.string()
+
+    q = graphkit("sql", store, "select count(*) as n from embeddings")
+    assert q.returncode == 0 and str(t.num_rows) in q.stdout
+
+    missing = graphkit("similar", store, "acct-nobody")
+    assert missing.returncode == 2 and "acct-nobody" in missing.stderr
+
+
+@pytest.mark.slow
+def test_second_refresh_publishes_version_2_and_bad_config_exits_2(demo_store, tmp_path):
+    store, _ = demo_store
+    second = graphkit("refresh", DEMO, "--set", f'store.path="{store}"', "--set", "walks.seed=8")
+    assert second.returncode == 0, second.stderr[-3000:]
+    assert "published version 2" in second.stdout
+    rows = json.loads(graphkit("versions", store, "--json").stdout)
+    assert [(r["version"], r["is_current"]) for r in rows] == [(1, False), (2, True)]
+
+    before = _snapshot(store)
+    started = time.monotonic()
+    bad = graphkit("refresh", DEMO, "--set", f'store.path="{store}"', "--set", "train.dim=0")
+    assert bad.returncode == 2
+    assert bad.stderr.count("\n") == 1 and "Traceback" not in bad.stderr
+    assert "[train] dim" in bad.stderr and "got 0" in bad.stderr
+    assert time.monotonic() - started < 30  # fails before the flow starts
+    assert _snapshot(store) == before
+
+    missing_col = graphkit("refresh", DEMO, "--set", f'store.path="{store}"', "--set", "input.source=sendr")
+    assert missing_col.returncode == 2 and "transfers.parquet" in missing_col.stderr and "'sender'" in missing_col.stderr
+    assert _snapshot(store) == before
+
+
+def test_usage_errors_exit_2(tmp_path):
+    assert graphkit("refresh").returncode == 2
+    r = graphkit("versions", tmp_path / "none")
+    assert r.returncode == 2 and "no embedding store here" in r.stderr
