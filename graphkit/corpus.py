@@ -3,13 +3,18 @@
 Layout of ``corpus_dir``::
 
     plan.json                 parameters, graph fingerprint and shard bounds (written first)
-    shard-00000.parquet       one column ``walk``: FixedSizeList<int32>[length], -1 pads stopped walks
+    alias.npy                 weighted walks only, while shards are pending: the alias table (uint64 [n_edges],
+                              8 bytes per edge) that every shard task memory-maps; removed once the corpus is complete
+    shard-00000.parquet       one column ``walk``: FixedSizeList<int32>[length], -1 pads stopped walks; the footer
+                              holds the shard's token and restart counts
     shard-00000.counts.npy    int64 [n_nodes]: how often each node occurs in that shard
     ...
-    manifest.json             written last: its presence marks a complete corpus
+    manifest.json             written last: its presence marks a complete corpus; holds the run's diagnostics
 
 Shard ``i`` holds the walks with global ids in ``[start_i, stop_i)`` in order, so concatenating the shards gives
-exactly ``random_walks(graph, per_node, length, seed)``, whatever the number of shards or workers.
+exactly ``random_walks(graph, per_node, length, seed, weighted=..., p=..., q=..., dead_end=...)``, whatever the
+number of shards or workers. A shard counts as complete only once its Parquet file, written under a temporary name
+and renamed into place after its counts file, exists; a rerun skips complete shards.
 """
 
 from __future__ import annotations
@@ -28,15 +33,19 @@ import pyarrow.parquet as pq
 
 from .errors import ConfigError
 from .graph import CSRGraph
-from .walks import _check_int, check_walk_params, count_visits, walk_range
+from .walks import (_check_int, _prepare, _run, alias_table, check_walk_options, check_walk_params, count_restarts,
+                    count_visits, walk_diagnostics)
 
 __all__ = ["write_walk_corpus", "WalkCorpus"]
 
 MANIFEST = "manifest.json"
 PLAN = "plan.json"
+ALIAS = "alias.npy"
 _LOCK = ".lock"
-_FORMAT = 1
-#: Walks per Parquet row group, and per walk_range call inside a shard task (bounds a task's memory).
+#: 2: walk options (weighted, p, q, dead_end) in the plan, diagnostics in the manifest.
+_FORMAT = 2
+_PLAN_KEYS = ("format", "n_nodes", "n_walks", "per_node", "length", "seed", "weighted", "p", "q", "dead_end", "graph")
+#: Walks per Parquet row group, and per kernel call inside a shard task (bounds a task's memory).
 ROW_GROUP_WALKS = 131_072
 #: Upper bound on walks per shard; shards are few and large (Dask best practice) but a failed one costs little.
 MAX_SHARD_WALKS = 2_000_000
@@ -44,6 +53,8 @@ MAX_SHARD_WALKS = 2_000_000
 MIN_SHARD_WALKS = 100_000
 #: Shards per worker thread, so that a slow shard near the end does not leave the other threads idle.
 SHARDS_PER_THREAD = 4
+_META_TOKENS = "graphkit.n_tokens"
+_META_RESTARTS = "graphkit.n_restarts"
 
 
 def shard_name(index: int) -> str:
@@ -82,7 +93,10 @@ def plan_shards(n_walks: int, n_threads: int, n_shards: int | None = None) -> li
 def _graph_fingerprint(graph_dir: Path) -> dict:
     """Sizes and modification times of the graph files: cheap, and changes whenever the graph is rebuilt."""
     files = {}
-    for name in ("graph.json", "indptr.npy", "indices.npy"):
+    names = ["graph.json", "indptr.npy", "indices.npy"]
+    if (graph_dir / "weights.npy").is_file():
+        names.append("weights.npy")  # reweighting the same edges changes weighted walks
+    for name in names:
         st = (graph_dir / name).stat()
         files[name] = [st.st_size, st.st_mtime_ns]
     return files
@@ -111,32 +125,40 @@ def _locked(corpus_dir: Path):
 
 # ---------------------------------------------------------------------------------------------------- shard task
 def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: int, *, per_node: int, length: int,
-                seed: int, row_group_walks: int = ROW_GROUP_WALKS) -> dict:
+                seed: int, weighted: bool = True, p: float = 1.0, q: float = 1.0, dead_end: str = "stop",
+                alias_path: str | None = None, row_group_walks: int = ROW_GROUP_WALKS) -> dict:
     """Compute walks ``[start, stop)`` and write them as shard ``index`` of ``corpus_dir``; returns a small dict.
 
-    Runs inside a Dask worker: it memory-maps the graph itself and keeps at most one row group of walks in memory.
-    Both files are written under temporary names and renamed into place, counts first, so the Parquet file's presence
-    marks a complete shard.
+    Runs inside a Dask worker: it memory-maps the graph (and the alias table at ``alias_path`` for weighted walks)
+    itself and keeps at most one row group of walks in memory. Both files are written under temporary names and
+    renamed into place, counts first, so the Parquet file's presence marks a complete shard.
     """
     graph = CSRGraph.load(graph_dir, mmap=True)
+    alias = np.load(alias_path, mmap_mode="r") if alias_path is not None else None
+    # check=False: the driver checked the graph files once (sorted rows for second-order walks)
+    walker = _prepare(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
     corpus_dir = Path(corpus_dir)
     final_parquet, final_counts = corpus_dir / shard_name(index), corpus_dir / counts_name(index)
     tmp_parquet, tmp_counts = _tmp_name(final_parquet), _tmp_name(final_counts)
     schema = pa.schema([pa.field("walk", pa.list_(pa.int32(), length), nullable=False)],
                        metadata={"graphkit.first_walk": str(start), "graphkit.seed": str(seed)})
     counts = np.zeros(graph.n_nodes, dtype=np.int64)
+    n_restarts = 0
     try:
         with pq.ParquetWriter(tmp_parquet, schema, compression="zstd", use_dictionary=False) as writer:
             for a in range(start, stop, row_group_walks):
                 b = min(stop, a + row_group_walks)
                 # threads=1: the Dask worker threads are the parallelism (numba threads x Dask threads <= cores)
-                walks = walk_range(graph, a, b, per_node=per_node, length=length, seed=seed, threads=1)
+                walks = _run(walker, a, b, length, seed, threads=1)
                 counts += count_visits(walks, graph.n_nodes)
+                if walker.restart:
+                    n_restarts += count_restarts(walks, graph)
                 fsl = pa.FixedSizeListArray.from_arrays(pa.array(walks.reshape(-1)), length)
                 writer.write_table(pa.Table.from_arrays([fsl], schema=schema), row_group_size=b - a)
                 del walks, fsl
             if start == stop:
                 writer.write_table(schema.empty_table())
+            writer.add_key_value_metadata({_META_TOKENS: str(int(counts.sum())), _META_RESTARTS: str(n_restarts)})
         with open(tmp_counts, "wb") as f:
             np.save(f, counts)
         os.replace(tmp_counts, final_counts)
@@ -144,12 +166,23 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
     finally:
         for tmp in (tmp_parquet, tmp_counts):
             tmp.unlink(missing_ok=True)
-    return {"index": index, "n_tokens": int(counts.sum())}
+    return {"index": index, "n_tokens": int(counts.sum()), "n_restarts": n_restarts}
 
 
-def _shard_entry(index, start, stop, n_tokens):
+def _shard_footer(corpus_dir: Path, index: int) -> dict | None:
+    """Token and restart counts of a complete shard, from its Parquet footer; None when the footer lacks them (the
+    shard is then written again)."""
+    try:
+        meta = pq.read_metadata(corpus_dir / shard_name(index)).metadata or {}
+        return {"index": index, "n_tokens": int(meta[_META_TOKENS.encode()]),
+                "n_restarts": int(meta[_META_RESTARTS.encode()])}
+    except (KeyError, ValueError, OSError, pa.ArrowException):
+        return None
+
+
+def _shard_entry(index, start, stop, n_tokens, n_restarts):
     return {"index": index, "file": shard_name(index), "counts": counts_name(index), "start": start, "stop": stop,
-            "n_walks": stop - start, "n_tokens": n_tokens}
+            "n_walks": stop - start, "n_tokens": n_tokens, "n_restarts": n_restarts}
 
 
 def _is_complete(corpus_dir: Path, index: int) -> bool:
@@ -158,12 +191,14 @@ def _is_complete(corpus_dir: Path, index: int) -> bool:
 
 # ---------------------------------------------------------------------------------------------------- driver
 def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards=None, dask_address=None,
-                      n_workers=None) -> dict:
-    """Write the DeepWalk corpus of the graph in ``graph_dir`` to ``corpus_dir`` as Parquet shards, with Dask.
+                      n_workers=None, weighted=True, p=1.0, q=1.0, dead_end="stop") -> dict:
+    """Write the walk corpus of the graph in ``graph_dir`` to ``corpus_dir`` as Parquet shards, with Dask.
 
-    The corpus equals ``random_walks(CSRGraph.load(graph_dir), per_node, length, seed)`` read shard after shard. It is
-    never gathered: every task memory-maps the graph, writes its own shard and returns a small dict. Rerunning with
-    the same arguments skips the shards already complete; ``manifest.json`` is written only when all are.
+    The corpus equals ``random_walks(CSRGraph.load(graph_dir), per_node, length, seed, weighted=weighted, p=p, q=q,
+    dead_end=dead_end)`` read shard after shard. It is never gathered: every task memory-maps the graph, writes its
+    own shard and returns a small dict, so memory stays bounded by one row group per worker thread (plus the
+    memory-mapped graph, and the alias table for weighted walks). Rerunning with the same arguments skips the shards
+    already complete; ``manifest.json`` is written only when all are.
 
     Parameters
     ----------
@@ -171,7 +206,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
         A folder written by :meth:`CSRGraph.save`; workers must see it under the same path.
     corpus_dir : str or Path
         Created if missing. If it holds a corpus planned with other parameters or another graph, nothing is touched
-        and ``ConfigError`` is raised.
+        and ``ConfigError`` is raised. Workers must see it under the same path.
     per_node, length, seed : int
         As in :func:`graphkit.walks.random_walks`.
     n_shards : int, optional
@@ -182,13 +217,17 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     n_workers : int, optional
         Threads of the in-process cluster (default: the cores this process may use). Not allowed with
         ``dask_address``: the cluster there is sized by whoever started it.
+    weighted, p, q, dead_end
+        As in :func:`graphkit.walks.walk_range`. ``weighted`` has an effect only when the graph has weights; the
+        plan and manifest record the effective value.
 
     Returns
     -------
     dict
         The manifest: ``n_nodes``, ``n_walks``, ``length``, ``n_tokens`` (tokens other than padding), ``per_node``,
-        ``seed``, ``shards`` (file names relative to ``corpus_dir`` with their walk-id bounds and token counts), plus
-        ``format`` and ``graph`` (the graph-file fingerprint the corpus was made from).
+        ``seed``, ``weighted``, ``p``, ``q``, ``dead_end``, ``shards`` (file names relative to ``corpus_dir`` with
+        their walk-id bounds, token and restart counts), ``diagnostics`` (:func:`graphkit.walks.walk_diagnostics`),
+        plus ``format`` and ``graph`` (the graph-file fingerprint the corpus was made from).
 
     Raises
     ------
@@ -198,6 +237,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     import distributed  # imported here: readers of a corpus need no Dask
 
     per_node, length, seed = check_walk_params(per_node, length, seed)
+    weighted, p, q, dead_end = check_walk_options(weighted, p, q, dead_end)
     if n_workers is not None:
         if dask_address is not None:
             raise ConfigError(f"n_workers applies to the in-process cluster only, got n_workers={n_workers!r} "
@@ -209,6 +249,9 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     n_walks = per_node * n_nodes
     if n_shards is not None:
         n_shards = _check_int("n_shards", n_shards, 1, max(1, n_walks))
+    if (p, q) != (1.0, 1.0):
+        # once here rather than in every task: the shard tasks run with check=False
+        _prepare(graph, weighted=False, p=p, q=q, dead_end=dead_end)
     corpus_dir = Path(corpus_dir).resolve()
 
     if dask_address is None:
@@ -221,10 +264,11 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
         with _connect(distributed, cluster, dask_address) as client, _locked(corpus_dir):
             threads = sum(client.nthreads().values())
             plan = {"format": _FORMAT, "n_nodes": n_nodes, "n_walks": n_walks, "per_node": per_node, "length": length,
-                    "seed": seed, "graph": _graph_fingerprint(graph_dir),
+                    "seed": seed, "weighted": bool(weighted and graph.weights is not None), "p": p, "q": q,
+                    "dead_end": dead_end, "graph": _graph_fingerprint(graph_dir),
                     "bounds": plan_shards(n_walks, threads, n_shards) if n_shards is not None else None}
             plan = _settle_plan(corpus_dir, plan, threads)
-            manifest = _run_shards(client, graph_dir, corpus_dir, plan)
+            manifest = _run_shards(client, graph, graph_dir, corpus_dir, plan)
     finally:
         if cluster is not None:
             cluster.close()
@@ -245,8 +289,8 @@ def _settle_plan(corpus_dir: Path, plan: dict, threads: int) -> dict:
     path = corpus_dir / PLAN
     if path.is_file():
         old = json.loads(path.read_text())
-        old["bounds"] = [tuple(b) for b in old["bounds"]]
-        for key in ("format", "n_nodes", "n_walks", "per_node", "length", "seed", "graph", "bounds"):
+        old["bounds"] = [tuple(b) for b in old.get("bounds", [])]
+        for key in _PLAN_KEYS + ("bounds",):
             if key == "bounds" and plan["bounds"] is None:
                 continue  # default shard count: keep the shards already planned
             if old.get(key) != plan[key]:
@@ -263,34 +307,71 @@ def _settle_plan(corpus_dir: Path, plan: dict, threads: int) -> dict:
     return plan
 
 
-def _run_shards(client, graph_dir: Path, corpus_dir: Path, plan: dict) -> dict:
+def _ensure_alias(graph: CSRGraph, corpus_dir: Path) -> Path:
+    """The alias table as ``corpus_dir/alias.npy``, built straight into a memory-mapped temporary file and renamed
+    into place (so a present file is a complete one); reused by a rerun."""
+    final = corpus_dir / ALIAS
+    if not final.is_file():
+        tmp = _tmp_name(final)
+        try:
+            if graph.n_edges:
+                table = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.uint64, shape=(graph.n_edges,))
+                alias_table(graph, out=table)
+                table.flush()
+                del table
+            else:  # an empty array cannot be memory-mapped
+                with open(tmp, "wb") as f:
+                    np.save(f, np.empty(0, dtype=np.uint64))
+            os.replace(tmp, final)
+        finally:
+            tmp.unlink(missing_ok=True)
+    return final
+
+
+def _run_shards(client, graph: CSRGraph, graph_dir: Path, corpus_dir: Path, plan: dict) -> dict:
     import distributed
 
     for stale in corpus_dir.glob("*.tmp-*"):  # left by a crashed run; we hold the lock, so nobody writes them now
         stale.unlink(missing_ok=True)
     bounds = plan["bounds"]
-    n_tokens = {}
-    futures = []
+    done = {}
+    pending = []
     for index, (start, stop) in enumerate(bounds):
-        if _is_complete(corpus_dir, index):
-            n_tokens[index] = int(np.load(corpus_dir / counts_name(index), mmap_mode="r").sum())
-            continue
-        futures.append(client.submit(write_shard, str(graph_dir), str(corpus_dir), index, start, stop,
-                                     per_node=plan["per_node"], length=plan["length"], seed=plan["seed"],
-                                     row_group_walks=ROW_GROUP_WALKS, pure=False))
+        footer = _shard_footer(corpus_dir, index) if _is_complete(corpus_dir, index) else None
+        if footer is not None:
+            done[index] = footer
+        else:
+            pending.append((index, start, stop))
+    alias_path = str(_ensure_alias(graph, corpus_dir)) if pending and plan["weighted"] else None
+    options = {k: plan[k] for k in ("per_node", "length", "seed", "weighted", "p", "q", "dead_end")}
+    futures = [client.submit(write_shard, str(graph_dir), str(corpus_dir), index, start, stop, **options,
+                             alias_path=alias_path, row_group_walks=ROW_GROUP_WALKS, pure=False)
+               for index, start, stop in pending]
     try:
         for future in distributed.as_completed(futures):
             result = future.result()  # re-raises the first task failure; no manifest is written then
-            n_tokens[result["index"]] = result["n_tokens"]
+            done[result["index"]] = result
     except BaseException:
         client.cancel(futures)
         raise
-    shards = [_shard_entry(i, a, b, n_tokens[i]) for i, (a, b) in enumerate(bounds)]
-    manifest = {key: plan[key] for key in ("format", "n_nodes", "n_walks", "per_node", "length", "seed", "graph")}
+    shards = [_shard_entry(i, a, b, done[i]["n_tokens"], done[i]["n_restarts"]) for i, (a, b) in enumerate(bounds)]
+    manifest = {key: plan[key] for key in _PLAN_KEYS}
     manifest["n_tokens"] = sum(s["n_tokens"] for s in shards)
     manifest["shards"] = shards
+    manifest["diagnostics"] = _diagnostics(graph, corpus_dir, shards, plan["per_node"])
     _write_json_atomic(corpus_dir / MANIFEST, manifest)
+    (corpus_dir / ALIAS).unlink(missing_ok=True)  # scratch of the shard tasks; a complete corpus never needs it
     return manifest
+
+
+def _diagnostics(graph: CSRGraph, corpus_dir: Path, shards: list[dict], per_node: int) -> dict:
+    visits = np.zeros(graph.n_nodes, dtype=np.int64)
+    for shard in shards:
+        visits += np.load(corpus_dir / shard["counts"], mmap_mode="r")
+    out_deg = graph.degrees()
+    in_deg = np.bincount(np.asarray(graph.indices), minlength=graph.n_nodes) if graph.directed else None
+    return walk_diagnostics(visits, out_deg, per_node=per_node, in_degrees=in_deg,
+                            n_restarts=sum(s["n_restarts"] for s in shards))
 
 
 # ---------------------------------------------------------------------------------------------------- reader
@@ -326,6 +407,8 @@ class WalkCorpus:
         self.length = int(self.manifest["length"])
         self.n_tokens = int(self.manifest["n_tokens"])
         self.n_nodes = int(self.manifest["n_nodes"])
+        #: What the run recorded about its walks (see :func:`graphkit.walks.walk_diagnostics`).
+        self.diagnostics = self.manifest.get("diagnostics", {})
         for shard in self.manifest["shards"]:
             for key in ("file", "counts"):
                 if not (self.corpus_dir / shard[key]).is_file():

@@ -133,10 +133,8 @@ def check_free_space(folder, *, n_walks: int, length: int) -> int:
 
 
 def _walk_options(w) -> dict:
-    """Walk options beyond DeepWalk's, passed only when they differ from the defaults."""
-    opts = {"weighted": w.weighted, "p": w.p, "q": w.q, "dead_end": w.dead_end}
-    defaults = {"weighted": True, "p": 1.0, "q": 1.0, "dead_end": "stop"}
-    return {k: v for k, v in opts.items() if v != defaults[k]}
+    """Walk options beyond DeepWalk's: weights, node2vec p and q, what happens at a dead end."""
+    return {"weighted": w.weighted, "p": w.p, "q": w.q, "dead_end": w.dead_end}
 
 
 def _dirs(plan: dict, which: str) -> tuple[str, str, str]:

@@ -17,7 +17,7 @@ from graphkit import corpus as gc
 from graphkit.corpus import WalkCorpus, plan_shards, write_walk_corpus
 from graphkit.errors import ConfigError
 from graphkit.graph import CSRGraph
-from graphkit.walks import count_visits, random_walks
+from graphkit.walks import count_restarts, count_visits, random_walks, walk_diagnostics
 
 PER_NODE, LENGTH, SEED = 4, 7, 3
 
@@ -34,6 +34,18 @@ def graph_dir(tmp_path_factory):
 def reference(graph_dir):
     """The same corpus computed in one process, in memory."""
     return random_walks(CSRGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=1)
+
+
+@pytest.fixture(scope="module")
+def weighted_dir(tmp_path_factory):
+    """The same kind of directed graph with edge weights (uniform in [0.2, 5]), sinks included."""
+    g_nx = nx.gnm_random_graph(300, 900, seed=2, directed=True)
+    rng = np.random.default_rng(0)
+    for u, v in g_nx.edges():
+        g_nx[u][v]["weight"] = rng.uniform(0.2, 5.0)
+    g = graph_from_nx(g_nx)
+    assert (g.degrees() == 0).any() and g.weights is not None
+    return g.save(tmp_path_factory.mktemp("wgraph") / "g")
 
 
 def read_all(corpus_dir, **kwargs):
@@ -62,6 +74,89 @@ def test_corpus_equals_random_walks(graph_dir, reference, tmp_path, n_shards, n_
     assert (len(corpus), corpus.n_walks, corpus.length, corpus.n_tokens, corpus.n_nodes) == (
         1200, 1200, LENGTH, n_tokens, 300)
     np.testing.assert_array_equal(corpus.visit_counts(), count_visits(reference, 300))
+
+
+@pytest.mark.parametrize("opts, n_shards, n_workers", [
+    (dict(), 3, 2),
+    (dict(p=0.5, q=2.0, dead_end="restart"), 4, 2),
+    (dict(weighted=False, p=2.0, q=0.5), 1, 1),
+    (dict(dead_end="restart"), 7, 1),
+], ids=str)
+def test_weighted_second_order_corpus_equals_random_walks(weighted_dir, tmp_path, opts, n_shards, n_workers):
+    graph = CSRGraph.load(weighted_dir)
+    reference = random_walks(graph, PER_NODE, LENGTH, SEED, threads=2, **opts)
+    out = tmp_path / "c"
+    manifest = write_walk_corpus(weighted_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=n_shards,
+                                 n_workers=n_workers, **opts)
+    assert read_all(out).tobytes() == reference.tobytes()
+    assert (manifest["weighted"], manifest["p"], manifest["q"], manifest["dead_end"]) == (
+        opts.get("weighted", True), opts.get("p", 1.0), opts.get("q", 1.0), opts.get("dead_end", "stop"))
+    assert not (out / gc.ALIAS).exists()  # the shard tasks' alias table is scratch
+    n_restarts = count_restarts(reference, graph)
+    assert (n_restarts > 0) == (opts.get("dead_end") == "restart")
+    assert sum(s["n_restarts"] for s in manifest["shards"]) == n_restarts
+    expected = walk_diagnostics(count_visits(reference, 300), graph.degrees(), per_node=PER_NODE,
+                                in_degrees=np.bincount(graph.indices, minlength=300), n_restarts=n_restarts)
+    assert manifest["diagnostics"] == json.loads(json.dumps(expected))
+    assert WalkCorpus(out).diagnostics == manifest["diagnostics"]
+    assert manifest["diagnostics"]["dead_end_nodes"] == int((graph.degrees() == 0).sum()) > 0
+    meta = pq.read_metadata(out / "shard-00000.parquet").metadata
+    assert int(meta[b"graphkit.n_restarts"]) == manifest["shards"][0]["n_restarts"]
+    assert int(meta[b"graphkit.n_tokens"]) == manifest["shards"][0]["n_tokens"]
+
+
+def test_weighted_option_without_weights_is_recorded_as_unweighted(graph_dir, reference, tmp_path):
+    manifest = write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED,
+                                 weighted=True, n_shards=2)
+    assert manifest["weighted"] is False
+    assert read_all(tmp_path / "c").tobytes() == reference.tobytes()
+    # the same corpus, so asking for it without weights reuses it instead of refusing
+    assert write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED,
+                             weighted=False) == manifest
+
+
+def test_weighted_rerun_rewrites_only_incomplete_shards(weighted_dir, tmp_path):
+    opts = dict(per_node=PER_NODE, length=LENGTH, seed=SEED, p=0.5, q=2.0, dead_end="restart")
+    out = tmp_path / "c"
+    first = write_walk_corpus(weighted_dir, out, n_shards=4, **opts)
+    before = file_ids(out)
+    (out / "manifest.json").unlink()
+    (out / "shard-00001.parquet").unlink()
+    (out / "alias.npy.tmp-0123").write_bytes(b"half an alias table from a crashed run")
+    pq.write_table(pa.table({"walk": pa.array([[0] * LENGTH], pa.list_(pa.int32(), LENGTH))}),
+                   out / "shard-00003.parquet")  # a Parquet file without our footer counts is not a finished shard
+    before.pop("shard-00003.parquet")
+    second = write_walk_corpus(weighted_dir, out, **opts)
+    after = file_ids(out)
+    assert second == first  # shard 1's counts and restarts come back, the others' are read from their footers
+    assert {n for n in after if after.get(n) != before.get(n)} == {
+        "shard-00001.parquet", "shard-00001.counts.npy", "shard-00003.parquet", "shard-00003.counts.npy"}
+    assert not list(out.glob("*.tmp-*")) and not (out / gc.ALIAS).exists()
+    assert read_all(out).tobytes() == random_walks(CSRGraph.load(weighted_dir), PER_NODE, LENGTH, SEED, p=0.5,
+                                                   q=2.0, dead_end="restart").tobytes()
+
+
+@pytest.mark.parametrize("change, match", [
+    (dict(p=0.5), r"another p \(1.0, now 0.5\)"),
+    (dict(dead_end="restart"), r"another dead_end \('stop', now 'restart'\)"),
+    (dict(weighted=False), r"another weighted \(True, now False\)"),
+])
+def test_corpus_of_other_walk_options_is_left_alone(weighted_dir, tmp_path, change, match):
+    out = tmp_path / "c"
+    write_walk_corpus(weighted_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=2)
+    before, manifest = file_ids(out), (out / "manifest.json").read_bytes()
+    with pytest.raises(ConfigError, match=match):
+        write_walk_corpus(weighted_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, **change)
+    assert file_ids(out) == before and (out / "manifest.json").read_bytes() == manifest
+
+
+def test_reweighted_graph_is_refused(weighted_dir, tmp_path):
+    g = CSRGraph.load(weighted_dir, mmap=False)
+    g.save(tmp_path / "g")
+    write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=1, length=5, seed=0)
+    np.save(tmp_path / "g" / "weights.npy", g.weights[::-1].copy())  # same edges, other weights
+    with pytest.raises(ConfigError, match=r"another graph"):
+        write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=1, length=5, seed=0)
 
 
 def test_different_seed_gives_different_corpus(graph_dir, reference, tmp_path):
@@ -216,12 +311,23 @@ def test_empty_graph_gives_empty_corpus(tmp_path):
     (dict(n_shards=1201), r"n_shards must be <= 1200, got 1201"),
     (dict(n_workers=0), r"n_workers must be >= 1, got 0"),
     (dict(n_workers=2, dask_address="tcp://127.0.0.1:1"), r"n_workers applies to the in-process cluster only"),
+    (dict(p=0.0), r"p must lie in \[0.001, 1000\], got 0.0"),
+    (dict(q="2"), r"q must be a number, got '2'"),
+    (dict(dead_end="jump"), r"dead_end must be one of 'stop', 'restart', got 'jump'"),
+    (dict(weighted=1), r"weighted must be true or false, got 1"),
 ])
 def test_bad_parameters_raise(graph_dir, tmp_path, kwargs, match):
     args = dict(per_node=PER_NODE, length=LENGTH, seed=SEED) | kwargs
     with pytest.raises(ConfigError, match=match):
         write_walk_corpus(graph_dir, tmp_path / "c", **args)
     assert not (tmp_path / "c").exists()  # nothing was created
+
+
+def test_unsorted_graph_is_refused_for_second_order_walks(tmp_path):
+    CSRGraph.from_arrays([0, 2, 3, 4], [2, 1, 0, 0]).save(tmp_path / "g")
+    with pytest.raises(ConfigError, match=r"sorted ascending; node 0 is not"):
+        write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=1, length=4, seed=0, p=2.0)
+    assert not (tmp_path / "c").exists()
 
 
 def test_unreachable_scheduler(graph_dir, tmp_path):
