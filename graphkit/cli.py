@@ -31,9 +31,11 @@ def cmd_refresh(args) -> int:
     cfg = load_config(args.config, args.set)
     preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
     _prefect_env()
+    from flows.artifacts import console_progress
     from flows.refresh import refresh_flow
 
-    version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
+    with console_progress():  # bars on a terminal only
+        version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
     print(f"published version {version} to {cfg.store_path}")
     return 0
 

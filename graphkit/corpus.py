@@ -31,7 +31,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from . import progress
 from .errors import ConfigError
+from .faults import fault_point
 from .graph import CSRGraph
 from .walks import (_check_int, _prepare, _run, alias_table, check_walk_options, check_walk_params, count_restarts,
                     count_visits, walk_diagnostics)
@@ -257,7 +259,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     if dask_address is None:
         threads = n_workers or len(os.sched_getaffinity(0))
         cluster = distributed.LocalCluster(processes=False, n_workers=1, threads_per_worker=threads,
-                                           dashboard_address=None)
+                                           dashboard_address=":0")  # None still binds 8787
     else:
         cluster = None
     try:
@@ -347,10 +349,18 @@ def _run_shards(client, graph: CSRGraph, graph_dir: Path, corpus_dir: Path, plan
     futures = [client.submit(write_shard, str(graph_dir), str(corpus_dir), index, start, stop, **options,
                              alias_path=alias_path, row_group_walks=ROW_GROUP_WALKS, pure=False)
                for index, start, stop in pending]
+    total = plan["n_walks"] * plan["length"]
+
+    def report_progress():
+        progress.report("walks", sum(bounds[i][1] - bounds[i][0] for i in done) * plan["length"], total)
+
+    report_progress()  # resumed shards show as done
     try:
         for future in distributed.as_completed(futures):
             result = future.result()  # re-raises the first task failure; no manifest is written then
             done[result["index"]] = result
+            report_progress()
+            fault_point("walks")  # a shard complete, the corpus not yet
     except BaseException:
         client.cancel(futures)
         raise

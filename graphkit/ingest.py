@@ -257,7 +257,8 @@ def _inline_params(sql: str, params: dict) -> str:
 
 
 def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: bool = False,
-                  window: dict | None = None, threads: int | None = None) -> dict[str, Any]:
+                  window: dict | None = None, threads: int | None = None,
+                  memory_limit: str | None = "2GB") -> dict[str, Any]:
     """Read edge tables with DuckDB and write the graph a run works on.
 
     Rows outside the time window are left out; rows with a null id are dropped (``drop_null_ids``) or rejected;
@@ -275,6 +276,8 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     window : dict, optional
         ``since``, ``until``, ``as_of`` (aware datetimes or None) and ``half_life_days`` (float or None), as
         :meth:`graphkit.config.InputSection.time_window` gives.
+    memory_limit : str, default "2GB"
+        DuckDB's memory limit; past it the joins and sorts spill to ``out_dir/duckdb_tmp``.
 
     Returns
     -------
@@ -300,7 +303,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     window = window or {}
     params = _window_params(window, directed)
     where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
-    con = work_connection(out_dir / "duckdb_tmp", threads=threads)
+    con = work_connection(out_dir / "duckdb_tmp", threads=threads, memory_limit=memory_limit)
     try:
         _raw_view(con, tables, info["files"], info["id_type"])
         _run(con, "windowed_edges", params, create="temp table windowed")

@@ -141,7 +141,7 @@ def test_bad_tables_exit_2_and_change_nothing(published, kind):
     assert snapshot(published / "store") == before
 
 
-@pytest.mark.parametrize("stage", ["ingest", "train", "publish"])
+@pytest.mark.parametrize("stage", ["ingest", "walks", "train", "publish"])
 def test_killed_run_leaves_store_whole_and_next_run_publishes(published, stage):
     cfg = published / "ok.toml"
     before_versions = [(v["version"], v["is_current"]) for v in list_versions(published / "store")]
