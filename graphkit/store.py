@@ -65,7 +65,10 @@ def store_lock(store):
     store = Path(store)
     store.mkdir(parents=True, exist_ok=True, mode=0o755)
     path = store / _LOCK
-    fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
+    except OSError as exc:  # ELOOP: a symlink planted where the lock belongs is never followed
+        raise StoreError(f"{path}: cannot open the store lock ({exc.strerror}); a symlink there is refused") from None
     try:
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)

@@ -111,14 +111,19 @@ def test_bad_config_or_input_exits_2_and_changes_nothing(published, case):
     assert snapshot(published / "store") == before
 
 
-@pytest.mark.parametrize("kind", ["not_parquet", "bad_weights", "only_self_loops", "empty", "mixed_types"])
+@pytest.mark.parametrize("kind", ["not_parquet", "truncated", "bad_weights", "zero_weights", "inf_weights",
+                                  "only_self_loops", "empty", "mixed_types"])
 def test_bad_tables_exit_2_and_change_nothing(published, kind):
     folder = published / f"bad_{kind}"
     folder.mkdir(exist_ok=True)
     if kind == "not_parquet":
         (folder / "edges.parquet").write_text("sender,receiver\n")
-    elif kind == "bad_weights":
-        pq.write_table(pa.table({"sender": ["a", "b"], "receiver": ["b", "c"], "amount": [float("nan"), -1.0]}),
+    elif kind == "truncated":
+        data = (published / "edges.parquet").read_bytes()
+        (folder / "edges.parquet").write_bytes(data[: len(data) // 2])
+    elif kind in ("bad_weights", "zero_weights", "inf_weights"):
+        bad = {"bad_weights": [float("nan"), -1.0], "zero_weights": [1.0, 0.0], "inf_weights": [float("inf"), 1.0]}
+        pq.write_table(pa.table({"sender": ["a", "b"], "receiver": ["b", "c"], "amount": bad[kind]}),
                        folder / "edges.parquet")
     elif kind == "only_self_loops":
         pq.write_table(pa.table({"sender": ["a", "b"], "receiver": ["a", "b"], "amount": [1.0, 1.0]}),
@@ -172,6 +177,25 @@ def test_second_writer_refused_and_stale_lock_ignored(published):
     (store / ".lock").write_text("999999")
     n = len(list_versions(store))
     assert graphkit.refresh(load_config(published / "ok.toml")) == n + 1
+
+
+def test_lock_and_temp_files_are_not_followed_through_symlinks(published, tmp_path):
+    store = tmp_path / "store"
+    store.mkdir()
+    victim = tmp_path / "victim.txt"
+    victim.write_text("keep me")
+    (store / ".lock").symlink_to(victim)
+    with pytest.raises(StoreError, match="a symlink there is refused"):
+        with store_lock(store):
+            pass
+    assert victim.read_text() == "keep me"
+    (store / ".lock").unlink()
+    # a symlink planted where the catalog copy is built is removed, not written through
+    from graphkit.store import publish_embeddings
+    (store / f".catalog.duckdb.tmp-{os.getpid()}").symlink_to(victim)
+    publish_embeddings(store, pa.array(["a", "b"]), np.ones((2, 2), np.float32), params={}, fingerprint=[],
+                       counts={}, timings={})
+    assert victim.read_text() == "keep me"
 
 
 def test_refuses_when_disk_is_too_small(published, monkeypatch):
