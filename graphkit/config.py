@@ -113,6 +113,12 @@ class TrainSection(_Section):
     epochs: int = Field(default=1, ge=1, description="Passes over the walk corpus.")
     learning_rate: float = Field(default=0.025, gt=0, le=1.0, description="Starting learning rate, decayed linearly.")
     threads: int | None = Field(default=None, ge=1, description="Training threads (default: all cores).")
+    subsample: float = Field(default=0.0, ge=0, le=1, description="Subsampling threshold of frequent nodes "
+                                                                  "(Mikolov et al. 2013); 0 keeps every visit.")
+    warm_start: bool = Field(default=False, description="Start the vectors of nodes present in the current "
+                                                        "version from it (new nodes start random).")
+    memmap: bool = Field(default=False, description="Back the weight matrices by np.memmap files in the work "
+                                                    "folder, for graphs whose matrices do not fit in memory.")
 
 
 class StoreSection(_Section):

@@ -1,13 +1,15 @@
 """Huffman coding of nodes by visit count: the output tree for hierarchical-softmax training.
 
 Every node gets a binary code; the inner nodes on its root-to-leaf path each own one output vector in the
-hierarchical softmax, so frequent nodes (short codes) cost fewer updates. The tree is built with :mod:`heapq`
-in O(n log n) (Huffman 1952); the per-node code and path arrays are filled by two small numba kernels.
+hierarchical softmax, so frequent nodes (short codes) cost fewer updates. The tree (Huffman 1952) is built by the
+two-queue method (van Leeuwen 1976): once the leaves are sorted by weight, the inner nodes are created in order of
+non-decreasing weight, so the two smallest weights are always at the fronts of two queues (sorted leaves, inner
+nodes in creation order) and the merging is linear. The sort is numpy's; the merge and the per-node code and path
+arrays are three small numba kernels.
 """
 
 from __future__ import annotations
 
-import heapq
 from dataclasses import dataclass
 
 import numba
@@ -16,10 +18,6 @@ import numpy as np
 from .errors import ConfigError
 
 __all__ = ["HuffmanTree", "build_huffman"]
-
-_ID_BITS = 32  # tree node ids < 2n - 1 < 2**32 for any int32 node index
-_ID_MASK = (1 << _ID_BITS) - 1
-
 
 @dataclass(frozen=True, eq=False)
 class HuffmanTree:
@@ -80,22 +78,13 @@ def build_huffman(counts) -> HuffmanTree:
     """
     weights = _check_counts(counts)
     n = weights.shape[0]
-    # Heap entries pack (weight, tree node id) into one int, weight << 32 | id, which compares like the tuple but
-    # several times faster. Tree node ids: leaves 0..n-1, inner node k is n + k. The ids are unique, so the heap
-    # order, hence the tree, is fully determined by the counts.
-    heap = [(w << _ID_BITS) | i for i, w in enumerate(weights.tolist())]
-    heapq.heapify(heap)
-    parent = [-1] * (2 * n - 1)
-    bit = [0] * (2 * n - 1)
-    pop, replace = heapq.heappop, heapq.heapreplace
-    for k in range(n - 1):
-        first = pop(heap)
-        second = heap[0]
-        replace(heap, (((first >> _ID_BITS) + (second >> _ID_BITS)) << _ID_BITS) | (n + k))  # pops `second` too
-        parent[first & _ID_MASK] = parent[second & _ID_MASK] = n + k
-        bit[second & _ID_MASK] = 1
-    parent = np.array(parent, dtype=np.int64)
-    bit = np.array(bit, dtype=np.uint8)
+    # Ties: leaves in node order (a stable sort), a leaf before an inner node of the same weight, inner nodes in
+    # creation order. This is the order of a binary heap of (weight, tree node id) pairs with leaves numbered
+    # 0..n-1 and inner node k numbered n + k, so the tree is the one a heap-based construction gives.
+    order = np.argsort(weights, kind="stable")
+    parent = np.empty(2 * n - 1, dtype=np.int64)
+    bit = np.zeros(2 * n - 1, dtype=np.uint8)
+    _huffman_merge_kernel(weights[order], order, parent, bit)
     depth = np.zeros(2 * n - 1, dtype=np.int32)
     _huffman_depths_kernel(parent, depth)
     lengths = np.ascontiguousarray(depth[:n])
@@ -118,6 +107,42 @@ def _check_counts(counts) -> np.ndarray:
     if np.any(arr < 0):
         raise ConfigError(f"counts must be >= 0, got values such as {arr[arr < 0][:5].tolist()!r}")
     return np.maximum(arr.astype(np.int64), 1)
+
+
+@numba.njit(cache=True, nogil=True)
+def _huffman_merge_kernel(sorted_weights, order, parent, bit):
+    """Two-queue Huffman construction (van Leeuwen 1976), linear time.
+
+    Parameters
+    ----------
+    sorted_weights : int64 [n]
+        The leaf weights in non-decreasing order; ``order`` int64 [n] gives the leaf (node index) of each.
+    parent : int64 [2n-1]
+        Filled in place with the tree node id of each node's parent (leaves 0..n-1, inner node k is n + k, created
+        as the k-th merge; the root 2n-2 gets -1).
+    bit : uint8 [2n-1]
+        Filled in place: 1 for the second child taken by a merge, 0 otherwise.
+    """
+    n = sorted_weights.shape[0]
+    inner_w = np.empty(max(n - 1, 1), dtype=np.int64)
+    leaf = 0   # front of the leaf queue (position in sorted order)
+    head = 0   # front of the inner-node queue (inner nodes head..k-1 are not merged yet)
+    parent[2 * n - 2] = -1
+    for k in range(n - 1):
+        total = 0
+        for child in range(2):
+            # The smaller front; a leaf wins a tie (it has the smaller id).
+            if leaf < n and (head >= k or sorted_weights[leaf] <= inner_w[head]):
+                node = order[leaf]
+                total += sorted_weights[leaf]
+                leaf += 1
+            else:
+                node = n + head
+                total += inner_w[head]
+                head += 1
+            parent[node] = n + k
+            bit[node] = child
+        inner_w[k] = total
 
 
 @numba.njit(cache=True, nogil=True)

@@ -48,9 +48,16 @@ def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
                          "tables": [t.model_dump() for t in cfg.tables()], "window": window if windowed else None})
     work = store / "work"
 
+    warm_from = None
+    if cfg.train.warm_start:  # the start depends on the version current now
+        from .store import current_version
+
+        warm_from = current_version(store)
+
     def chain(graph_key: str) -> tuple[str, str]:
         walks_key = digest({"graph": graph_key, "walks": cfg.walks.model_dump()})
-        train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads"})})
+        train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads", "memmap"}),
+                            "warm_from": warm_from})
         return str(work / f"walks-{walks_key}"), str(work / f"train-{train_key}")
 
     ingest_dir = work / f"ingest-{ingest_key}"
@@ -164,6 +171,17 @@ def stage_walks(cfg: RefreshConfig, plan: dict, which: str = "published") -> dic
     return {**manifest, "seconds": round(time.perf_counter() - t0, 3)}
 
 
+def _warm_start_rows(cfg: RefreshConfig, plan: dict):
+    """(rows, vectors) of the nodes the current version has (trained rows only), for ``[train] warm_start``."""
+    from .store import match_current
+
+    node_ids, node_kinds = _published_ids(cfg, plan)
+    match = match_current(plan["store"], node_ids, node_kinds, cfg.train.dim)
+    if match is None or match["new_rows"].size == 0:
+        return None, 0
+    return (match["new_rows"], match["old_vectors"]), int(match["new_rows"].size)
+
+
 def stage_train(cfg: RefreshConfig, plan: dict, which: str = "published") -> dict[str, Any]:
     """Skip-gram over the walk corpus, chunk by chunk; writes ``vectors.npy`` (float32 [n_nodes, dim])."""
     from .corpus import WalkCorpus
@@ -178,16 +196,21 @@ def stage_train(cfg: RefreshConfig, plan: dict, which: str = "published") -> dic
     t0 = time.perf_counter()
     corpus = WalkCorpus(walks_dir)
     t = cfg.train
+    init, warm = None, 0
+    if t.warm_start and which == "published":  # the evaluation model must not start from vectors that saw
+        init, warm = _warm_start_rows(cfg, plan)   # its held-out edges
+    out.mkdir(parents=True, exist_ok=True)
     vectors = train_vectors(corpus, corpus.n_nodes, dim=t.dim, window=t.window, objective=t.objective,
                             negatives=t.negatives, epochs=t.epochs, seed=cfg.walks.seed, threads=t.threads,
-                            learning_rate=t.learning_rate)
-    out.mkdir(parents=True, exist_ok=True)
+                            learning_rate=t.learning_rate, subsample=t.subsample, init=init,
+                            memmap_dir=str(out / "memmap") if t.memmap else None)
     tmp = out / f".vectors-{os.getpid()}.npy"
     np.save(tmp, vectors)
     os.replace(tmp, out / "vectors.npy")
     seconds = time.perf_counter() - t0
     tokens = int(corpus.n_tokens) * t.epochs
     result = {"vectors": str(out / "vectors.npy"), "n_nodes": int(vectors.shape[0]), "dim": int(vectors.shape[1]),
+              "warm_started_nodes": warm,
               "tokens": tokens, "tokens_per_second": round(tokens / max(seconds, 1e-9)),
               "seconds": round(seconds, 3)}
     write_json_atomic(done, result)
@@ -252,6 +275,8 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     stages = (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train), ("evaluate", evaluation))
     timings = {name: (0.0 if stage.get("skipped") else stage["seconds"]) for name, stage in stages if stage}
     metrics = {"train_tokens_per_second": train["tokens_per_second"], **(evaluation or {}).get("metrics", {})}
+    if cfg.train.warm_start:
+        counts["warm_started_nodes"] = train.get("warm_started_nodes", 0)
     if alignment.get("residual") is not None:
         metrics["align_residual"] = round(alignment["residual"], 6)
     if walks.get("diagnostics"):

@@ -3,24 +3,35 @@
 The model is word2vec's skip-gram (Mikolov et al. 2013) with either objective: negative sampling from the unigram
 distribution raised to 0.75, or the hierarchical softmax over the Huffman tree of the visit counts.
 
-Kernel layout (Ji, Shah, Willke et al. 2016, "Parallelizing Word2Vec in Shared and Distributed Memory"): for each
-centre position the context nodes of its window are the *inputs* and the centre's targets are the *outputs*: the
-centre itself plus ``negatives`` negatives drawn once per centre and shared by all its context nodes (negative
-sampling), or the inner nodes on the centre's Huffman path with labels ``1 - code`` (hierarchical softmax). The small
-matrix of dot products between the two sets gives the gradients ``g = (label - sigmoid(dot)) * lr``; both sets are
-then updated from the values they had before the step. Threads share the two matrices without locks (Hogwild,
-Recht et al. 2011), each one taking whole walks.
+Kernel layout (after Ji, Shah, Willke et al. 2016, "Parallelizing Word2Vec in Shared and Distributed Memory"): for
+each centre position the context nodes of its window are the *inputs* and the centre's targets are the *outputs*:
+the centre itself plus ``negatives`` negatives drawn once per centre and shared by all its context nodes (negative
+sampling), or the inner nodes on the centre's Huffman path with labels ``1 - code`` (hierarchical softmax). The
+context nodes are taken two at a time, in window order (the last one alone if their number is odd): for each pair,
+the 2 x n_targets dot products give the gradients ``g = (label - sigmoid(dot)) * lr``, and the pair's rows and the
+targets' rows are updated from the values they had before that pair's step (targets in order, then inputs, so a row
+listed twice gets both updates). Pairs rather than the whole window: with the hierarchical softmax every centre
+shares the top of the tree, and a whole window's summed step on those rows cost 0.002-0.004 Micro-F1 on the
+planted-partition benchmark, pairs none, at the same speed (docs/bench/train.md). The kernels work in 2 x 2 tiles.
+Threads share the two matrices without locks (Hogwild, Recht et al. 2011), each one taking blocks of walks in turn;
+a background thread reads the next chunk of walks meanwhile.
+
+``sigmoid(x)`` clips ``x`` to [-6, 6] and interpolates linearly in a table of the logistic function at
+``SIG_POINTS`` evenly spaced points of that interval (``sigmoid_table()``, float32), within 2e-6 of the exact value.
 
 Exact definition of the random streams (all arithmetic modulo 2**64; ``mix`` and ``G`` as in :mod:`graphkit.walks`):
 
 * epoch key ``key = mix(mix(seed ^ TRAIN_SALT) + epoch)``; walk ``w`` (global row number in the corpus, counting
   empty rows) starts from ``s = mix(key ^ w)``; every draw is ``s += G; r = mix(s)``.
-* per centre, in walk order: one draw for the window, ``b = 1 + ((r >> 32) * window >> 32)``; then, for negative
-  sampling, ``negatives`` draws from the alias table: bucket ``i = (r >> 32) * n_nodes >> 32``, kept when
+* with subsampling (``subsample > 0``) the walk first takes one draw per node visit, in order: the visit of ``v`` is
+  kept when ``r >> 32 < keep[v]`` (``keep_thresholds``), and the walk becomes its kept visits. Without it, no draws.
+* per centre (kept visit), in walk order: one draw for the window, ``b = 1 + ((r >> 32) * window >> 32)``; then, for
+  negative sampling, ``negatives`` draws from the alias table: bucket ``i = (r >> 32) * n_nodes >> 32``, kept when
   ``(r & 0xFFFFFFFF) < threshold[i]``, else ``alias[i]``. A negative equal to the centre is dropped (as word2vec
-  does), so a centre can have fewer. Walks of fewer than two nodes have no pairs and are skipped.
-* the learning rate of the centre at global position ``t`` (over all epochs, padding excluded) is
-  ``max(min_lr, lr - (lr - min_lr) * t / (epochs * n_tokens))``, computed in float64 and rounded to float32.
+  does), so a centre can have fewer. Walks of fewer than two (kept) nodes have no pairs and are skipped.
+* the learning rate of the centre at global position ``t`` (over all epochs, counting every visit but no padding,
+  discarded visits included) is ``max(min_lr, lr - (lr - min_lr) * t / (epochs * n_tokens))``, computed in float64
+  and rounded to float32.
 
 With ``threads=1`` the result is bit-identical across runs and independent of how the walks are cut into chunks.
 """
@@ -29,8 +40,13 @@ from __future__ import annotations
 
 import numbers
 import operator
+import os
+import queue
+import tempfile
+import threading
 import warnings
 from collections.abc import Iterable, Iterator
+from pathlib import Path
 
 import numba
 import numpy as np
@@ -39,10 +55,12 @@ from numba import types
 from numba.core import cgutils
 from numba.extending import intrinsic
 
+from . import progress
 from .errors import ConfigError
 from .huffman import build_huffman
 
-__all__ = ["train_vectors", "alias_table", "initial_vectors", "stream_key", "OBJECTIVES", "TRAIN_SALT"]
+__all__ = ["train_vectors", "alias_table", "initial_vectors", "keep_thresholds", "sigmoid_table", "stream_key",
+           "OBJECTIVES", "TRAIN_SALT", "SIG_POINTS"]
 
 OBJECTIVES = ("negative_sampling", "hierarchical_softmax")
 #: Salt that keeps the training streams apart from the walk streams of the same seed.
@@ -59,11 +77,16 @@ _S31 = np.uint64(31)
 _S32 = np.uint64(32)
 _LOW32 = np.uint64(0xFFFFFFFF)
 _MASK64 = (1 << 64) - 1
-#: Dot products are clipped to +-_MAX_DOT before the sigmoid: exp() then never overflows (fastmath assumes finite
-#: values), and the gradient lost beyond it is below 0.25 % of the learning rate.
+#: Dot products are clipped to +-_MAX_DOT before the sigmoid (the table's range): the gradient lost beyond it is
+#: below 0.25 % of the learning rate.
 _MAX_DOT = np.float32(6.0)
-#: Walks per parallel task: large enough to amortise the scratch allocation, small enough to balance two threads.
+#: Points of the sigmoid table over [-_MAX_DOT, _MAX_DOT] (interpolated: at most 2e-6 from the exact function).
+SIG_POINTS = 1024
+#: Walks per block; threads take blocks in turn (see ``_train_parallel_kernel``), so blocks are kept small.
 _BLOCK = 64
+#: Hierarchical softmax with several threads: the top inner nodes of the tree (about 6 levels) each thread trains in
+#: a copy of its own, merged into the shared rows after every block of walks.
+_HOT_ROWS = 255
 
 
 # ---------------------------------------------------------------------------------------------------- numba kernels
@@ -102,48 +125,92 @@ else:
         return types.void(arr, row, col), codegen
 
 
-# fastmath here only (it lets LLVM vectorise the dot-product reductions): on the planted-partition quality benchmark
-# of tests/test_train.py it was 2.3x faster for negative sampling and 1.7-2.5x for the hierarchical softmax, with the
-# same Micro-F1 (0.9497/0.9498 with it, 0.9501/0.9500 without, two seeds; HS 0.9244/0.9216 vs 0.9233/0.9227).
-@numba.njit(cache=True, nogil=True, fastmath=True)
-def _sgd_step_kernel(emb_in, emb_out, ctx, n_ctx, tgt, lab, n_tgt, lr, grad, d_in):
-    """One skip-gram step of a centre: ``n_ctx`` input rows against ``n_tgt`` output rows.
+@numba.njit(cache=True, nogil=True, inline="always")
+def _sigmoid_kernel(x, sig, scale):
+    """The logistic function of float32 ``x`` read from the table ``sig`` (float32 [SIG_POINTS], see
+    ``sigmoid_table``) with linear interpolation, after clipping ``x`` to +-_MAX_DOT; ``scale`` is
+    ``float32((SIG_POINTS - 1) / (2 * _MAX_DOT))``."""
+    u = (min(max(x, -_MAX_DOT), _MAX_DOT) + _MAX_DOT) * scale
+    i = min(np.int64(u), sig.shape[0] - 2)
+    return sig[i] + (u - np.float32(i)) * (sig[i + 1] - sig[i])
 
-    emb_in float32 [n_nodes, dim] and emb_out float32 [n_out, dim] are updated in place (rows ``ctx[:n_ctx]`` and
-    ``tgt[:n_tgt]``); ctx int32 and tgt int32 hold row numbers, lab float32 [n_tgt] the labels (1 or 0), lr is
-    float32. grad float32 [>= n_ctx, >= n_tgt] and d_in float32 [>= n_ctx, dim] are scratch. Both sets of rows are
-    updated from their values before the step; a row listed twice gets both updates.
+
+# fastmath on the two SGD kernels only: it lets LLVM vectorise the dot-product reductions. On the planted-partition
+# benchmark graph (threads=1, seeds 5 and 6) the Micro-F1 was the same to four digits with and without it: 0.9513
+# and 0.9517 for negative sampling, 0.9301 and 0.9282 for the hierarchical softmax, at 1.4-2.5x the speed.
+# Both work on 2 x 2 tiles (two input rows against two output rows per pass over the dimensions): each loaded value
+# then feeds two multiply-adds, and there are a quarter as many short loops. The driver pads odd counts with a zero
+# row whose gradients it sets to 0, so the tiles need no remainder code.
+@numba.njit(cache=True, nogil=True, fastmath=True)
+def _gradients_kernel(emb_in, emb_out, ctx, n_ctx, tgt, lab, n_tgt, lr, sig, grad):
+    """Fill grad float32 [>= n_ctx + 1, >= n_tgt + 1] with ``(lab[t] - sigmoid(in_k . out_t)) * lr`` where ``in_k``
+    is ``emb_in[ctx[k]]`` and ``out_t`` is ``emb_out[tgt[t]]``.
+
+    emb_in float32 [n_in, dim], emb_out float32 [n_out, dim] (read only here); ctx, tgt int32 row numbers, each
+    followed by a padding row (the matrices' zero last row) that completes an odd count to a tile, whose
+    gradients are set to 0; lab float32 [n_tgt] labels; lr float32; sig the sigmoid table.
     """
     dim = emb_in.shape[1]
-    one = np.float32(1.0)
+    nc, nt = n_ctx + (n_ctx & 1), n_tgt + (n_tgt & 1)
+    for k in range(0, nc, 2):
+        i0, i1 = emb_in[ctx[k]], emb_in[ctx[k + 1]]
+        for t in range(0, nt, 2):
+            o0, o1 = emb_out[tgt[t]], emb_out[tgt[t + 1]]
+            s00 = s01 = s10 = s11 = np.float32(0.0)
+            for d in range(dim):
+                a, b, x, y = i0[d], i1[d], o0[d], o1[d]
+                s00 += a * x
+                s01 += a * y
+                s10 += b * x
+                s11 += b * y
+            grad[k, t], grad[k, t + 1], grad[k + 1, t], grad[k + 1, t + 1] = s00, s01, s10, s11
+    scale = np.float32((sig.shape[0] - 1) / (2.0 * _MAX_DOT))
     for k in range(n_ctx):
-        ci = ctx[k]
         for t in range(n_tgt):
-            ti = tgt[t]
-            dot = np.float32(0.0)
-            for d in range(dim):
-                dot += emb_in[ci, d] * emb_out[ti, d]
-            dot = min(max(dot, -_MAX_DOT), _MAX_DOT)
-            grad[k, t] = (lab[t] - one / (one + np.exp(-dot))) * lr
-    for k in range(n_ctx):
+            grad[k, t] = (lab[t] - _sigmoid_kernel(grad[k, t], sig, scale)) * lr
+        if nt > n_tgt:
+            grad[k, n_tgt] = np.float32(0.0)
+    if nc > n_ctx:
+        for t in range(nt):
+            grad[n_ctx, t] = np.float32(0.0)
+
+
+@numba.njit(cache=True, nogil=True, fastmath=True)
+def _apply_kernel(emb_in, emb_out, ctx, n_ctx, tgt, n_tgt, grad, d_in):
+    """Apply the gradients of ``_gradients_kernel``: ``emb_out[tgt[t]] += sum_k grad[k, t] * emb_in[ctx[k]]`` and
+    ``emb_in[ctx[k]] += sum_t grad[k, t] * emb_out[tgt[t]]``, in place, both from the rows' values before the step.
+
+    ctx, tgt and grad are padded as for ``_gradients_kernel`` (the padding rows get zero updates). Targets are
+    updated in order and inputs last, so a row listed twice gets both updates. d_in float32 [>= n_ctx + 1, dim] is
+    scratch.
+    """
+    dim = emb_in.shape[1]
+    nc, nt = n_ctx + (n_ctx & 1), n_tgt + (n_tgt & 1)
+    for k in range(0, nc, 2):
+        a0, a1 = d_in[k], d_in[k + 1]
         for d in range(dim):
-            d_in[k, d] = np.float32(0.0)
-        for t in range(n_tgt):
-            g = grad[k, t]
-            ti = tgt[t]
+            a0[d] = np.float32(0.0)
+            a1[d] = np.float32(0.0)
+        for t in range(0, nt, 2):
+            g00, g01, g10, g11 = grad[k, t], grad[k, t + 1], grad[k + 1, t], grad[k + 1, t + 1]
+            o0, o1 = emb_out[tgt[t]], emb_out[tgt[t + 1]]
             for d in range(dim):
-                d_in[k, d] += g * emb_out[ti, d]
-    for t in range(n_tgt):
-        ti = tgt[t]
-        for k in range(n_ctx):
-            g = grad[k, t]
-            ci = ctx[k]
+                x, y = o0[d], o1[d]
+                a0[d] += g00 * x + g01 * y
+                a1[d] += g10 * x + g11 * y
+    for t in range(0, nt, 2):
+        o0, o1 = emb_out[tgt[t]], emb_out[tgt[t + 1]]
+        for k in range(0, nc, 2):
+            g00, g01, g10, g11 = grad[k, t], grad[k, t + 1], grad[k + 1, t], grad[k + 1, t + 1]
+            i0, i1 = emb_in[ctx[k]], emb_in[ctx[k + 1]]
             for d in range(dim):
-                emb_out[ti, d] += g * emb_in[ci, d]
+                a, b = i0[d], i1[d]
+                o0[d] += g00 * a + g10 * b
+                o1[d] += g01 * a + g11 * b
     for k in range(n_ctx):
-        ci = ctx[k]
+        row, acc = emb_in[ctx[k]], d_in[k]
         for d in range(dim):
-            emb_in[ci, d] += d_in[k, d]
+            row[d] += acc[d]
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -168,26 +235,90 @@ def _draw_negatives_kernel(s, thresh, alias, out):
     return s
 
 
+@numba.njit(cache=True, nogil=True, inline="always")
+def _keep_visits_kernel(tokens, a, m, keep, s, seq, pos):
+    """Copy the visits ``tokens[a:a + m]`` of one walk into seq (int32) with their offsets in pos (int64), dropping
+    those that subsampling discards (one draw per visit, kept when the high 32 bits are below ``keep[node]``; keep
+    uint64 [n_nodes], or [0] when subsampling is off: no draws, every visit kept). Returns (stream state, kept)."""
+    if keep.shape[0] == 0:
+        for j in range(m):
+            seq[j] = tokens[a + j]
+            pos[j] = j
+        return s, m
+    n = 0
+    for j in range(m):
+        s, r = _draw_kernel(s)
+        v = tokens[a + j]
+        if (r >> _S32) < keep[v]:
+            seq[n] = v
+            pos[n] = j
+            n += 1
+    return s, n
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _targets_kernel(c, hs, points, codes, lengths, negs, tgt, lab):
+    """Output rows and labels of centre ``c`` into tgt/lab; returns their number. Hierarchical softmax: the inner
+    nodes of c's Huffman path with labels 1 - code. Negative sampling: c (label 1), then the negatives ``negs``
+    (label 0) except those equal to c, which word2vec drops too."""
+    if hs:
+        for lvl in range(lengths[c]):
+            tgt[lvl] = points[c, lvl]
+            lab[lvl] = np.float32(1 - codes[c, lvl])
+        return lengths[c]
+    tgt[0], lab[0], n_tgt = c, np.float32(1.0), 1
+    for q in range(negs.shape[0]):
+        if negs[q] != c:
+            tgt[n_tgt], lab[n_tgt] = negs[q], np.float32(0.0)
+            n_tgt += 1
+    return n_tgt
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _prefetch_targets_kernel(emb_out, c, hs, points, lengths, negs, hot_slot):
+    """Prefetch the output rows centre ``c`` will update (its Huffman path but the hot rows, which the thread keeps
+    in its own copies, or c itself and its negatives)."""
+    if hs:
+        for lvl in range(lengths[c]):
+            r = points[c, lvl]
+            if hot_slot.shape[0] == 0 or hot_slot[r] < 0:
+                _prefetch_row_kernel(emb_out, r)
+    else:
+        _prefetch_row_kernel(emb_out, c)
+        for q in range(negs.shape[0]):
+            _prefetch_row_kernel(emb_out, negs[q])
+
+
 @numba.njit(cache=True, nogil=True)
-def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, emb_out, points, codes, lengths,
-                        thresh, alias, hs, window, lr0, lr_min, total_work, ctx, tgt, lab, grad, d_in, negs):
+def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, emb_out, tables, window, rates, scratch,
+                        hot_base):
     """Train on walks ``w_lo..w_hi-1`` of a chunk, one after the other, on the calling thread.
 
     tokens int32 [n_tok] are the chunk's node visits without padding, walk ``w`` being
     ``tokens[starts[w]:starts[w + 1]]`` (starts int64 [n_walks + 1]); walk0 is the global number of the chunk's first
-    walk and tok0 the global position of its first token. emb_in/emb_out float32 are updated in place. HS tables:
-    points int32 [n_nodes, max_len], codes uint8 [n_nodes, max_len], lengths int32 [n_nodes]; NS tables: thresh uint64
-    [n_nodes], alias int32 [n_nodes]; the unused ones may be dummies. ctx, tgt, lab, grad, d_in: scratch as for
-    ``_sgd_step_kernel`` (ctx holds min(2 * window, longest walk - 1) entries); negs int64 [2, negatives] (NS; [2, 0]
-    for HS) holds the negatives of the current and the next centre, drawn one centre ahead to prefetch their rows.
+    walk and tok0 the global position of its first token. emb_in/emb_out float32 are updated in place; the last row
+    of each is the zero padding row of the tiles. tables = (hs, points int32 [n, max_len], codes uint8 [n, max_len],
+    lengths int32 [n], thresh uint64 [n], alias int32 [n], keep uint64 [n] or [0], sig float32 [SIG_POINTS]); the
+    unused objective's arrays may be dummies. rates = (lr0, lr_min, total_work). scratch = (seq int32 [longest],
+    pos int64 [longest], ctx int32 [max_ctx + 1], tgt int32 and lab float32 [max_tgt + 1], grad float32
+    [max_ctx + 1, max_tgt + 1], d_in float32 [max_ctx + 1, dim], negs int64 [2, negatives]) from
+    ``_scratch_kernel``; negs holds the negatives of the current and the next centre, drawn one centre ahead to
+    prefetch their rows. With ``n_hot = hot_rows.shape[0] > 0`` (several threads), an output row ``r`` with
+    ``hot_slot[r] >= 0`` is read and written at row ``hot_base + hot_slot[r]`` instead, the thread's own copy (see
+    ``_merge_hot_kernel``); pad_out is the output padding row.
     """
+    hs, points, codes, lengths, thresh, alias, keep, sig, hot_slot, hot_rows, pad_out = tables
+    lr0, lr_min, total_work = rates
+    seq, pos, ctx, tgt, lab, grad, d_in, negs = scratch
     win = np.uint64(window)
+    pad_in, n_hot = emb_in.shape[0] - 1, hot_rows.shape[0]
     for w in range(w_lo, w_hi):
         a = starts[w]
-        n = starts[w + 1] - a
+        s, n = _keep_visits_kernel(tokens, a, starts[w + 1] - a, keep, _mix_kernel(key ^ np.uint64(walk0 + w)),
+                                   seq, pos)
         if n < 2:
             continue
-        s, r = _draw_kernel(_mix_kernel(key ^ np.uint64(walk0 + w)))
+        s, r = _draw_kernel(s)
         b_next = 1 + np.int64(((r >> _S32) * win) >> _S32)
         s = _draw_negatives_kernel(s, thresh, alias, negs[0])
         for i in range(n):
@@ -196,71 +327,91 @@ def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, em
                 s, r = _draw_kernel(s)
                 b_next = 1 + np.int64(((r >> _S32) * win) >> _S32)
                 s = _draw_negatives_kernel(s, thresh, alias, negs[(i + 1) & 1])
-                nxt = tokens[a + i + 1]
-                if hs:
-                    for lvl in range(lengths[nxt]):
-                        _prefetch_row_kernel(emb_out, points[nxt, lvl])
-                else:
-                    _prefetch_row_kernel(emb_out, nxt)
-                    for q in range(negs.shape[1]):
-                        _prefetch_row_kernel(emb_out, negs[(i + 1) & 1, q])
+                _prefetch_targets_kernel(emb_out, seq[i + 1], hs, points, lengths, negs[(i + 1) & 1], hot_slot)
                 if i + 1 + window < n:
-                    _prefetch_row_kernel(emb_in, tokens[a + i + 1 + window])
+                    _prefetch_row_kernel(emb_in, seq[i + 1 + window])
             n_ctx = 0
             for j in range(max(0, i - b), min(n, i + b + 1)):
                 if j != i:
-                    ctx[n_ctx] = tokens[a + j]
+                    ctx[n_ctx] = seq[j]
                     n_ctx += 1
-            c = tokens[a + i]
-            if hs:
-                n_tgt = lengths[c]
-                for lvl in range(n_tgt):
-                    tgt[lvl] = points[c, lvl]
-                    lab[lvl] = np.float32(1 - codes[c, lvl])
-            else:
-                tgt[0], lab[0], n_tgt = c, np.float32(1.0), 1
-                for q in range(cur.shape[0]):
-                    if cur[q] != c:  # word2vec drops a negative that hits the centre
-                        tgt[n_tgt], lab[n_tgt] = cur[q], np.float32(0.0)
-                        n_tgt += 1
-            frac = min(np.float64(tok0 + a + i) / total_work, 1.0)
+            n_tgt = _targets_kernel(seq[i], hs, points, codes, lengths, cur, tgt, lab)
+            if n_hot > 0:   # this thread's own copies of the most contended output rows
+                for t in range(n_tgt):
+                    slot = hot_slot[tgt[t]]
+                    if slot >= 0:
+                        tgt[t] = hot_base + slot
+            ctx[n_ctx], tgt[n_tgt] = pad_in, pad_out   # completes an odd count to a tile (zero gradients)
+            frac = min(np.float64(tok0 + a + pos[i]) / total_work, 1.0)
             lr = np.float32(max(lr_min, lr0 - (lr0 - lr_min) * frac))
-            _sgd_step_kernel(emb_in, emb_out, ctx, n_ctx, tgt, lab, n_tgt, lr, grad, d_in)
+            for k in range(0, n_ctx, 2):   # context nodes two at a time, each pair from the current rows
+                pair = ctx[k:]
+                m = min(2, n_ctx - k)
+                _gradients_kernel(emb_in, emb_out, pair, m, tgt, lab, n_tgt, lr, sig, grad)
+                _apply_kernel(emb_in, emb_out, pair, m, tgt, n_tgt, grad, d_in)
 
 
 @numba.njit(cache=True, nogil=True)
-def _train_serial_kernel(tokens, starts, walk0, tok0, key, emb_in, emb_out, points, codes, lengths, thresh, alias,
-                         hs, negatives, window, lr0, lr_min, total_work, max_ctx, max_tgt):
-    """All walks of a chunk in order on the calling thread (arguments as for ``_train_walks_kernel``; max_ctx and
-    max_tgt size the scratch). Updates emb_in and emb_out in place."""
-    dim = emb_in.shape[1]
-    ctx = np.empty(max_ctx, dtype=np.int32)
-    tgt = np.empty(max_tgt, dtype=np.int32)
-    lab = np.empty(max_tgt, dtype=np.float32)
-    grad = np.empty((max_ctx, max_tgt), dtype=np.float32)
-    d_in = np.empty((max_ctx, dim), dtype=np.float32)
-    negs = np.empty((2, negatives), dtype=np.int64)
-    _train_walks_kernel(tokens, starts, 0, starts.shape[0] - 1, walk0, tok0, key, emb_in, emb_out, points, codes,
-                        lengths, thresh, alias, hs, window, lr0, lr_min, total_work, ctx, tgt, lab, grad, d_in, negs)
+def _scratch_kernel(longest, max_ctx, max_tgt, dim, negatives):
+    """The scratch tuple of ``_train_walks_kernel`` for one thread (allocated once per block of walks), with room
+    for the padding row after the context and target rows."""
+    c, t = max_ctx + 1, max_tgt + 1
+    return (np.empty(longest, dtype=np.int32), np.empty(longest, dtype=np.int64), np.empty(c, dtype=np.int32),
+            np.empty(t, dtype=np.int32), np.empty(t, dtype=np.float32), np.empty((c, t), dtype=np.float32),
+            np.empty((c, dim), dtype=np.float32), np.empty((2, negatives), dtype=np.int64))
+
+
+@numba.njit(cache=True, nogil=True)
+def _train_serial_kernel(tokens, starts, walk0, tok0, key, emb_in, emb_out, tables, window, rates, sizes):
+    """All walks of a chunk in order on the calling thread (arguments as for ``_train_walks_kernel``; sizes =
+    (longest walk, max_ctx, max_tgt, negatives, threads) size the scratch). Updates emb_in and emb_out in place."""
+    longest, max_ctx, max_tgt, negatives, _ = sizes
+    scratch = _scratch_kernel(longest, max_ctx, max_tgt, emb_in.shape[1], negatives)
+    _train_walks_kernel(tokens, starts, 0, starts.shape[0] - 1, walk0, tok0, key, emb_in, emb_out, tables, window,
+                        rates, scratch, 0)
+
+
+@numba.njit(cache=True, nogil=True)
+def _merge_hot_kernel(emb_out, hot_rows, base, snap, first):
+    """Fold a thread's copies of the hot output rows into the shared rows and refresh the copies.
+
+    emb_out float32: shared row ``hot_rows[h]`` (int64 [n_hot]) and the thread's copy at ``base + h``; snap float32
+    [n_hot, dim] holds the copy's value at the last merge. The shared row gets the thread's change since then
+    (copy - snap), and copy and snap become the new shared value. ``first``: only take the shared values.
+    """
+    dim = emb_out.shape[1]
+    for h in range(hot_rows.shape[0]):
+        shared, own, old = emb_out[hot_rows[h]], emb_out[base + h], snap[h]
+        for d in range(dim):
+            v = shared[d] if first else shared[d] + (own[d] - old[d])
+            shared[d] = v
+            own[d] = v
+            old[d] = v
 
 
 @numba.njit(cache=True, nogil=True, parallel=True)
-def _train_parallel_kernel(tokens, starts, walk0, tok0, key, emb_in, emb_out, points, codes, lengths, thresh, alias,
-                           hs, negatives, window, lr0, lr_min, total_work, max_ctx, max_tgt):
-    """Same as ``_train_serial_kernel`` with blocks of walks spread over numba's threads, updating the shared
-    matrices without locks (Hogwild): the result then depends on thread timing."""
+def _train_parallel_kernel(tokens, starts, walk0, tok0, key, emb_in, emb_out, tables, window, rates, sizes):
+    """Same as ``_train_serial_kernel`` on numba's threads, which update the shared matrices without locks
+    (Hogwild): the result then depends on thread timing. ``sizes`` has a fifth entry, the thread count T; thread
+    ``i`` takes the blocks of walks ``i, i + T, i + 2T, ...``, so that all threads work on nearby positions of the
+    corpus at any time and train with nearly the same learning rate (contiguous halves would put the second thread
+    at a rate decayed by half a chunk from the start; on the planted-partition benchmark that cost 0.003-0.006
+    Micro-F1 with the hierarchical softmax). The hot output rows (``tables``; the top of the Huffman tree, which
+    every centre updates) are trained in per-thread copies merged after every block: written by all threads at
+    once, those cache lines bounced between the cores and two threads were slower than one."""
+    longest, max_ctx, max_tgt, negatives, n_threads = sizes
+    hot_rows, pad_out = tables[9], tables[10]
     n_walks = starts.shape[0] - 1
-    dim = emb_in.shape[1]
-    for blk in numba.prange((n_walks + _BLOCK - 1) // _BLOCK):
-        ctx = np.empty(max_ctx, dtype=np.int32)
-        tgt = np.empty(max_tgt, dtype=np.int32)
-        lab = np.empty(max_tgt, dtype=np.float32)
-        grad = np.empty((max_ctx, max_tgt), dtype=np.float32)
-        d_in = np.empty((max_ctx, dim), dtype=np.float32)
-        negs = np.empty((2, negatives), dtype=np.int64)
-        _train_walks_kernel(tokens, starts, blk * _BLOCK, min(n_walks, (blk + 1) * _BLOCK), walk0, tok0, key,
-                            emb_in, emb_out, points, codes, lengths, thresh, alias, hs, window, lr0, lr_min,
-                            total_work, ctx, tgt, lab, grad, d_in, negs)
+    n_blocks = (n_walks + _BLOCK - 1) // _BLOCK
+    for tid in numba.prange(n_threads):
+        scratch = _scratch_kernel(longest, max_ctx, max_tgt, emb_in.shape[1], negatives)
+        base = pad_out + 1 + tid * hot_rows.shape[0]
+        snap = np.empty((hot_rows.shape[0], emb_in.shape[1]), dtype=np.float32)
+        _merge_hot_kernel(emb_out, hot_rows, base, snap, True)
+        for blk in range(tid, n_blocks, n_threads):
+            _train_walks_kernel(tokens, starts, blk * _BLOCK, min(n_walks, (blk + 1) * _BLOCK), walk0, tok0, key,
+                                emb_in, emb_out, tables, window, rates, scratch, base)
+            _merge_hot_kernel(emb_out, hot_rows, base, snap, False)
 
 
 @numba.njit(cache=True, nogil=True)
@@ -343,10 +494,31 @@ def alias_table(weights) -> tuple[np.ndarray, np.ndarray]:
     return thresh, alias
 
 
-def initial_vectors(n_nodes: int, dim: int, seed: int) -> np.ndarray:
-    """word2vec's start: input vectors uniform in [-0.5/dim, 0.5/dim), float32 [n_nodes, dim], from ``seed``."""
+def sigmoid_table() -> np.ndarray:
+    """The logistic function at ``SIG_POINTS`` evenly spaced points of [-6, 6] (float32), as the kernels read it."""
+    x = np.linspace(-float(_MAX_DOT), float(_MAX_DOT), SIG_POINTS)
+    return (1.0 / (1.0 + np.exp(-x))).astype(np.float32)
+
+
+def keep_thresholds(counts, subsample: float) -> np.ndarray:
+    """Subsampling of frequent nodes (Mikolov et al. 2013): a visit of node ``v`` is kept with probability
+    ``min(1, sqrt(subsample / f_v))``, ``f_v = counts[v] / counts.sum()``; returns it times 2**32 as uint64 (n,),
+    compared with the high 32 bits of a draw. Empty when ``subsample`` is 0 (off)."""
+    if subsample == 0:
+        return np.zeros(0, dtype=np.uint64)
+    counts = np.asarray(counts, dtype=np.float64)
+    freq = counts / counts.sum()
+    with np.errstate(divide="ignore"):
+        keep = np.minimum(1.0, np.sqrt(subsample / freq))   # an unvisited node gets inf -> 1
+    return np.floor(keep * 2.0 ** 32).astype(np.uint64)
+
+
+def initial_vectors(n_nodes: int, dim: int, seed: int, *, out=None) -> np.ndarray:
+    """word2vec's start: input vectors uniform in [-0.5/dim, 0.5/dim), float32 [n_nodes, dim], from ``seed``.
+
+    ``out`` (float32 C-contiguous [n_nodes, dim], e.g. an ``np.memmap``) is filled in place and returned."""
     rng = np.random.default_rng([seed, INIT_SALT])
-    emb = np.empty((n_nodes, dim), dtype=np.float32)
+    emb = np.empty((n_nodes, dim), dtype=np.float32) if out is None else out
     rng.random(out=emb, dtype=np.float32)
     emb -= np.float32(0.5)
     emb /= np.float32(dim)
@@ -435,10 +607,132 @@ def _resolve_counts(walks, n_nodes, counts, chunk_walks) -> np.ndarray:
     return total
 
 
+def _hot_rows(hs, counts, n_out, threads) -> np.ndarray:
+    """Output rows trained in per-thread copies when several threads run (int64, empty otherwise): the top
+    ``_HOT_ROWS`` inner nodes of the Huffman tree (the last merges; every centre's path starts there). Negative
+    sampling has none: its rows are the centres and negatives, spread over all nodes."""
+    if threads == 1 or not hs:
+        return np.zeros(0, dtype=np.int64)
+    return np.arange(max(0, n_out - _HOT_ROWS), n_out, dtype=np.int64)
+
+
+def _check_init(init, n_nodes, dim):
+    """(rows int64 [m], vectors float32 [m, dim]) from ``init``, or None; see ``train_vectors``."""
+    if init is None:
+        return None
+    if isinstance(init, tuple):
+        if len(init) != 2:
+            raise ConfigError(f"init must be an array of shape ({n_nodes}, {dim}) or a (rows, vectors) pair, "
+                              f"got a tuple of {len(init)} items")
+        rows, vectors = np.asarray(init[0]), np.asarray(init[1])
+        if rows.ndim != 1 or (rows.size and rows.dtype.kind not in "iu"):
+            raise ConfigError(f"init rows must be a 1-D integer array, got shape {rows.shape} and dtype {rows.dtype}")
+        rows = rows.astype(np.int64)
+        if rows.size and (rows.min() < 0 or rows.max() >= n_nodes):
+            raise ConfigError(f"init rows must be node indices in [0, {n_nodes}), got values in "
+                              f"[{rows.min()}, {rows.max()}]")
+        if np.unique(rows).size != rows.size:
+            raise ConfigError("init rows must be distinct, got a repeated node index")
+        shape = (rows.size, dim)
+    else:
+        rows, vectors = None, np.asarray(init)
+        shape = (n_nodes, dim)
+    if vectors.shape != shape:
+        raise ConfigError(f"init vectors must have shape {shape}, got {vectors.shape}")
+    if vectors.dtype.kind != "f":
+        raise ConfigError(f"init vectors must be floats, got dtype {vectors.dtype}")
+    if not np.isfinite(vectors).all():
+        raise ConfigError("init vectors must be finite, got NaN or infinity")
+    return rows, vectors
+
+
+def _weight_matrix(shape, memmap_dir, name):
+    """A zeroed float32 matrix in memory, or in a file of ``memmap_dir`` that is unlinked at once: the mapping stays
+    valid (the pages can still go to disk under memory pressure) and the space is freed when the array is."""
+    if memmap_dir is None:
+        return np.zeros(shape, dtype=np.float32)
+    fd, path = tempfile.mkstemp(prefix=f".{name}-", suffix=".f32", dir=memmap_dir)
+    try:
+        os.ftruncate(fd, max(1, shape[0] * shape[1] * 4))  # sparse, hence zero, until written
+        return np.memmap(path, dtype=np.float32, mode="r+", shape=shape)
+    finally:
+        os.close(fd)
+        os.unlink(path)
+
+
+def _check_memmap_dir(memmap_dir):
+    if memmap_dir is None:
+        return None
+    path = Path(memmap_dir)
+    if path.exists() and not path.is_dir():
+        raise ConfigError(f"memmap_dir must be a folder, got the file {str(path)!r}")
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise ConfigError(f"memmap_dir {str(path)!r} cannot be created: {exc.strerror}") from None
+    return path
+
+
+class _ChunkReader:
+    """Iterate the kernel form of the chunks ``(tokens, starts, n_rows)``, read by a background thread that stays
+    at most one chunk ahead of the consumer: the next Parquet chunk is decoded while numba (nogil) trains on the
+    current one. An error of the reader is raised in the consumer; leaving early stops the reader."""
+
+    _DONE = object()
+
+    def __init__(self, walks, chunk_walks, n_nodes):
+        self._source = _chunks(walks, chunk_walks)
+        self._n_nodes = n_nodes
+        self._queue = queue.Queue(maxsize=1)
+        self._slot = threading.Semaphore(1)   # held while a chunk is read, given back when the consumer takes it
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._read, name="graphkit-chunk-reader", daemon=True)
+
+    def _read(self):
+        try:
+            while True:
+                self._slot.acquire()
+                if self._stop.is_set():
+                    return
+                chunk = next(self._source, None)
+                if chunk is None:
+                    self._queue.put(self._DONE)
+                    return
+                tokens, starts = _compact(chunk, self._n_nodes)
+                self._queue.put((tokens, starts, chunk.shape[0]))
+        except BaseException as exc:  # handed to the consumer, which raises it
+            self._queue.put(exc)
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __iter__(self):
+        while True:
+            item = self._queue.get()
+            self._slot.release()
+            if item is self._DONE:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._slot.release()   # wakes a reader waiting for its slot
+        while self._thread.is_alive():   # a reader blocked on put() needs the queue drained
+            try:
+                self._queue.get(timeout=0.05)
+            except queue.Empty:
+                pass
+        self._thread.join()
+        return False
+
+
 # ---------------------------------------------------------------------------------------------------- driver
 def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_sampling", negatives=5, epochs=1, seed=0,
-                  threads=None, *, learning_rate=0.025, min_learning_rate=0.0001, counts=None,
-                  chunk_walks=65536) -> np.ndarray:
+                  threads=None, *, learning_rate=0.025, min_learning_rate=0.0001, subsample=0.0, init=None,
+                  memmap_dir=None, counts=None, chunk_walks=65536) -> np.ndarray:
     """Train skip-gram node vectors on random walks, chunk by chunk.
 
     Parameters
@@ -447,7 +741,8 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         Node indices in ``0..n_nodes-1``; ``-1`` entries (padding after a walk stopped) are skipped. A re-iterable
         (a list of arrays, :class:`graphkit.corpus.WalkCorpus`) is read once per epoch, plus once before training to
         count visits unless it has ``visit_counts()`` or ``counts`` is given. A one-shot iterator needs ``counts``
-        and ``epochs=1``. Chunks are never concatenated.
+        and ``epochs=1``. Chunks are never concatenated; a background thread reads the next one while the current
+        one trains.
     n_nodes : int
         Number of nodes (rows of the result), ``>= 1``.
     dim : int, default 128
@@ -456,7 +751,8 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         in ``1..window`` (word2vec's dynamic window).
     objective : {"negative_sampling", "hierarchical_softmax"}
     negatives : int, default 5
-        Negatives per centre (negative sampling only), drawn from the visit counts raised to 0.75.
+        Negatives per centre (negative sampling only), drawn from the visit counts raised to 0.75 and shared by
+        all context nodes of the centre's window.
     epochs : int, default 1
     seed : int, default 0
         In ``[0, 2**64)``; seeds the initial vectors and every random draw.
@@ -464,17 +760,30 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         numba threads (default: numba's current setting). With 1 the result is bit-identical across runs;
         with more, threads update the shared vectors without locks and the result depends on timing.
     learning_rate, min_learning_rate : float
-        The rate decays linearly from ``learning_rate`` to ``min_learning_rate`` over ``epochs`` passes.
+        The rate decays linearly from ``learning_rate`` to ``min_learning_rate`` over all tokens of all epochs.
+    subsample : float, default 0
+        Subsampling threshold ``t`` of frequent nodes (Mikolov et al. 2013): a visit of a node of frequency ``f`` is
+        kept with probability ``min(1, sqrt(t / f))`` before windows are formed. 0 keeps every visit; 1e-3 to 1e-5
+        are the usual values for words (common practice).
+    init : ndarray of float, shape (n_nodes, dim), or tuple (rows, vectors), optional
+        Warm start: the initial input vectors. A full matrix replaces the random start; a pair gives the start of
+        nodes ``rows`` (distinct ints, shape (m,)) as ``vectors`` (shape (m, dim)) while every other node starts
+        random as usual. Output vectors start at zero either way.
+    memmap_dir : str or Path, optional
+        Keep both weight matrices in files of this folder (``np.memmap``; created if missing) rather than in
+        memory, for graphs whose matrices do not fit. The files are unlinked at once: their space is freed when the
+        returned array is.
     counts : array_like of int, shape (n_nodes,), optional
         Visit count of every node in the walks (per epoch). Builds the Huffman tree (hierarchical softmax) or the
-        negative distribution, and gives the token total of the learning-rate schedule.
+        negative distribution, the subsampling probabilities, and gives the token total of the learning-rate
+        schedule.
     chunk_walks : int, default 65536
         Walks per kernel call; larger chunks are cut (the result does not depend on it).
 
     Returns
     -------
     ndarray of float32, shape (n_nodes, dim)
-        The input vectors. Nodes that no walk visits keep their random start.
+        The input vectors (an ``np.memmap`` with ``memmap_dir``). Nodes that no walk visits keep their start.
 
     Raises
     ------
@@ -497,6 +806,9 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
     min_learning_rate = _check_rate("min_learning_rate", min_learning_rate, 0.0, strict=False)
     if min_learning_rate > learning_rate:
         raise ConfigError(f"min_learning_rate must be <= learning_rate={learning_rate!r}, got {min_learning_rate!r}")
+    subsample = _check_rate("subsample", subsample, 0.0, strict=False)
+    warm = _check_init(init, n_nodes, dim)
+    memmap_dir = _check_memmap_dir(memmap_dir)
     chunk_walks = _check_int("chunk_walks", chunk_walks, 1)
     if _is_one_shot(walks) and epochs > 1:
         raise ConfigError(f"walks is a one-shot iterator, which cannot be read again for epochs={epochs}; "
@@ -510,15 +822,30 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         tree = build_huffman(counts)
         points, codes, lengths = tree.points, tree.codes, tree.lengths
         thresh, alias = np.zeros(1, np.uint64), np.zeros(1, np.int32)
-        emb_out = np.zeros((max(n_nodes - 1, 1), dim), dtype=np.float32)
-        max_tgt = max(tree.max_len, 1)
+        n_out, max_tgt = max(n_nodes - 1, 1), max(tree.max_len, 1)
     else:
         thresh, alias = alias_table(counts.astype(np.float64) ** 0.75)
         points, codes, lengths = np.zeros((1, 1), np.int32), np.zeros((1, 1), np.uint8), np.zeros(1, np.int32)
-        emb_out = np.zeros((n_nodes, dim), dtype=np.float32)
-        max_tgt = negatives + 1
-    emb_in = initial_vectors(n_nodes, dim, seed)
-    total_work = float(epochs) * n_tokens
+        n_out, max_tgt = n_nodes, negatives + 1
+    hot_rows = _hot_rows(hs, counts, n_out, threads)
+    hot_slot = np.full(n_out if hot_rows.size else 0, -1, dtype=np.int32)
+    hot_slot[hot_rows] = np.arange(hot_rows.size, dtype=np.int32)
+    tables = (hs, points, codes, lengths, thresh, alias, keep_thresholds(counts, subsample), sigmoid_table(),
+              hot_slot, hot_rows, n_out)
+    rates = (learning_rate, min_learning_rate, float(epochs) * n_tokens)
+    # One extra zero row in each matrix: the padding row of the kernels' 2 x 2 tiles (it stays zero).
+    emb_in = _weight_matrix((n_nodes + 1, dim), memmap_dir, "input")
+    vectors_in = emb_in[:n_nodes]
+    if warm is None or warm[0] is not None:
+        initial_vectors(n_nodes, dim, seed, out=vectors_in)
+    if warm is not None:
+        rows, vectors = warm
+        if rows is None:
+            vectors_in[:] = vectors
+        else:
+            vectors_in[rows] = vectors
+    # ... and after it, every thread's copies of the hot output rows.
+    emb_out = _weight_matrix((n_out + 1 + threads * hot_rows.size, dim), memmap_dir, "output")
     kernel = _train_serial_kernel if threads == 1 else _train_parallel_kernel
 
     previous = numba.get_num_threads()
@@ -527,18 +854,19 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         for epoch in range(epochs):
             key = np.uint64(stream_key(seed, epoch))
             walk0, tok0 = 0, epoch * n_tokens
-            for chunk in _chunks(walks, chunk_walks):
-                tokens, starts = _compact(chunk, n_nodes)
-                longest = int(np.diff(starts).max()) if chunk.shape[0] else 0
-                if longest >= 2:
-                    kernel(tokens, starts, np.int64(walk0), np.int64(tok0), key, emb_in, emb_out, points, codes,
-                           lengths, thresh, alias, hs, negatives, window, learning_rate, min_learning_rate,
-                           total_work, min(2 * window, longest - 1), max_tgt)
-                walk0 += chunk.shape[0]
-                tok0 += int(starts[-1])
+            with _ChunkReader(walks, chunk_walks, n_nodes) as reader:
+                for tokens, starts, n_rows in reader:
+                    longest = int(np.diff(starts).max()) if n_rows else 0
+                    if longest >= 2:
+                        sizes = (longest, min(2 * window, longest - 1), max_tgt, negatives, threads)
+                        kernel(tokens, starts, np.int64(walk0), np.int64(tok0), key, emb_in, emb_out, tables,
+                               window, rates, sizes)
+                    walk0 += n_rows
+                    tok0 += int(starts[-1])
+                    progress.report("train", tok0, epochs * n_tokens)
             if epoch == 0 and tok0 != n_tokens:
                 warnings.warn(f"counts sum to {n_tokens} but the walks hold {tok0} node visits; the learning-rate "
                               "schedule and the sampling tables follow counts", stacklevel=2)
     finally:
         numba.set_num_threads(previous)
-    return emb_in
+    return vectors_in

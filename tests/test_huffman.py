@@ -3,12 +3,15 @@
 External checks: Kraft's equality for a complete prefix code and the bound H(p) <= L < H(p) + 1 on the mean code
 length of an optimal code (Huffman 1952, "A Method for the Construction of Minimum-Redundancy Codes"; Cover & Thomas,
 "Elements of Information Theory", 2nd ed., ch. 5: Kraft inequality, Theorems 5.3.1/5.4.1, L = H for dyadic
-distributions; theorem numbers from memory), plus the total cost of an independent textbook Huffman construction.
+distributions; theorem numbers from memory), plus the total cost of an independent textbook Huffman construction,
+and the whole tree against a heap-based construction (Huffman 1952 with :mod:`heapq`, the method the two-queue
+kernel replaced) using the documented tie order.
 """
 
 from __future__ import annotations
 
 import bisect
+import heapq
 import os
 import subprocess
 import sys
@@ -53,6 +56,36 @@ def reference_cost(weights):
     return cost
 
 
+def heapq_reference(counts):
+    """(codes, points, lengths) of the Huffman tree built with a binary heap of (weight, tree node id) pairs:
+    leaves are 0..n-1, the k-th merge creates node n + k; the first popped becomes child 0, the second child 1."""
+    weights = [max(int(c), 1) for c in counts]
+    n = len(weights)
+    heap = [(w, i) for i, w in enumerate(weights)]
+    heapq.heapify(heap)
+    parent, bit = [-1] * (2 * n - 1), [0] * (2 * n - 1)
+    for k in range(n - 1):
+        (w1, a), (w2, b) = heapq.heappop(heap), heapq.heappop(heap)
+        parent[a] = parent[b] = n + k
+        bit[b] = 1
+        heapq.heappush(heap, (w1 + w2, n + k))
+    paths = []
+    for leaf in range(n):
+        code, inner, node = [], [], leaf
+        while parent[node] != -1:
+            code.append(bit[node])
+            inner.append(parent[node] - n)
+            node = parent[node]
+        paths.append((code[::-1], inner[::-1]))
+    max_len = max(len(c) for c, _ in paths)
+    codes = np.zeros((n, max_len), dtype=np.uint8)
+    points = np.full((n, max_len), -1, dtype=np.int32)
+    for v, (code, inner) in enumerate(paths):
+        codes[v, :len(code)] = code
+        points[v, :len(inner)] = inner
+    return codes, points, np.array([len(c) for c, _ in paths], dtype=np.int32)
+
+
 def check_tree(counts):
     """Every structural and information-theoretic property of the code of ``counts``."""
     counts = np.asarray(counts, dtype=np.int64)
@@ -93,6 +126,9 @@ def check_tree(counts):
         # Inner nodes are numbered in merge order, so numbers decrease from the root down.
         assert np.all(np.diff(tree.points[v, :L]) < 0)
     assert sorted(node_of_prefix.values()) == list(range(n - 1))
+    # The very tree of the heap-based construction: the two-queue merge keeps its tie order.
+    for got, want in zip((tree.codes, tree.points, tree.lengths), heapq_reference(counts)):
+        np.testing.assert_array_equal(got, want)
     if n > 1:
         assert node_of_prefix[""] == n - 2
         for prefix in node_of_prefix:
@@ -154,6 +190,14 @@ def test_single_symbol():
 @settings(max_examples=60, deadline=None, database=None)  # no .hypothesis folder in the checkout
 def test_huffman_properties_random(counts):
     check_tree(counts)
+
+
+def test_many_ties_match_the_heap_construction():
+    # Equal weights everywhere: every step of the merge is decided by the tie order (leaf first, then creation order).
+    for counts in ([7] * 33, [1, 2] * 20, RNG.integers(1, 4, 300).tolist()):
+        tree = build_huffman(counts)
+        for got, want in zip((tree.codes, tree.points, tree.lengths), heapq_reference(counts)):
+            np.testing.assert_array_equal(got, want)
 
 
 @pytest.mark.parametrize("counts, match", [

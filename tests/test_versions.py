@@ -242,3 +242,25 @@ def test_concurrent_reader_sees_whole_versions(tmp_path):
     p.join(timeout=30)
     assert bad == 0 and reads > 10
     assert len(seen) >= 2  # it did read across publishes
+
+
+def test_warm_start_counts_and_moves_less(tmp_path):
+    """Warm start: nodes of the current version start from it, so a second run moves less than a cold one,
+    measured as the overlap of each node's 10 nearest neighbours with the current version (rotation and scale
+    invariant)."""
+    args = [f'store.path="{tmp_path}"', *FAST_DEMO, "store.align=false"]
+    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args))
+    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args + ["walks.seed=5"]))
+    cold = list_versions(tmp_path)[-1]
+    promote_version(tmp_path, 1)
+    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml",
+                                 args + ["walks.seed=5", "train.warm_start=true", "train.subsample=0.001"]))
+    warm = list_versions(tmp_path)[-1]
+    assert warm["counts"]["warm_started_nodes"] == warm["n_nodes"] > 2900
+    assert warm["params"]["train"]["subsample"] == 0.001
+    _, v1 = read_version(tmp_path, 1)
+    from graphkit.evaluate import neighbour_overlap
+
+    _, vc = read_version(tmp_path, cold["version"])
+    _, vw = read_version(tmp_path, warm["version"])
+    assert neighbour_overlap(v1, vw, k=10) > neighbour_overlap(v1, vc, k=10)
