@@ -851,6 +851,7 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
     previous = numba.get_num_threads()
     numba.set_num_threads(threads)
     try:
+        progress.report("train", 0, epochs * n_tokens)  # opens the pass, so the first chunk shows a rate
         for epoch in range(epochs):
             key = np.uint64(stream_key(seed, epoch))
             walk0, tok0 = 0, epoch * n_tokens
