@@ -84,9 +84,6 @@ _MAX_DOT = np.float32(6.0)
 SIG_POINTS = 1024
 #: Walks per block; threads take blocks in turn (see ``_train_parallel_kernel``), so blocks are kept small.
 _BLOCK = 64
-#: Hierarchical softmax with several threads: the top inner nodes of the tree (about 6 levels) each thread trains in
-#: a copy of its own, merged into the shared rows after every block of walks.
-_HOT_ROWS = 255
 
 
 # ---------------------------------------------------------------------------------------------------- numba kernels
@@ -275,14 +272,11 @@ def _targets_kernel(c, hs, points, codes, lengths, negs, tgt, lab):
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
-def _prefetch_targets_kernel(emb_out, c, hs, points, lengths, negs, hot_slot):
-    """Prefetch the output rows centre ``c`` will update (its Huffman path but the hot rows, which the thread keeps
-    in its own copies, or c itself and its negatives)."""
+def _prefetch_targets_kernel(emb_out, c, hs, points, lengths, negs):
+    """Prefetch the output rows centre ``c`` will update (its Huffman path, or itself and its negatives)."""
     if hs:
         for lvl in range(lengths[c]):
-            r = points[c, lvl]
-            if hot_slot.shape[0] == 0 or hot_slot[r] < 0:
-                _prefetch_row_kernel(emb_out, r)
+            _prefetch_row_kernel(emb_out, points[c, lvl])
     else:
         _prefetch_row_kernel(emb_out, c)
         for q in range(negs.shape[0]):
@@ -290,8 +284,7 @@ def _prefetch_targets_kernel(emb_out, c, hs, points, lengths, negs, hot_slot):
 
 
 @numba.njit(cache=True, nogil=True)
-def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, emb_out, tables, window, rates, scratch,
-                        hot_base):
+def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, emb_out, tables, window, rates, scratch):
     """Train on walks ``w_lo..w_hi-1`` of a chunk, one after the other, on the calling thread.
 
     tokens int32 [n_tok] are the chunk's node visits without padding, walk ``w`` being
@@ -303,15 +296,13 @@ def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, em
     pos int64 [longest], ctx int32 [max_ctx + 1], tgt int32 and lab float32 [max_tgt + 1], grad float32
     [max_ctx + 1, max_tgt + 1], d_in float32 [max_ctx + 1, dim], negs int64 [2, negatives]) from
     ``_scratch_kernel``; negs holds the negatives of the current and the next centre, drawn one centre ahead to
-    prefetch their rows. With ``n_hot = hot_rows.shape[0] > 0`` (several threads), an output row ``r`` with
-    ``hot_slot[r] >= 0`` is read and written at row ``hot_base + hot_slot[r]`` instead, the thread's own copy (see
-    ``_merge_hot_kernel``); pad_out is the output padding row.
+    prefetch their rows.
     """
-    hs, points, codes, lengths, thresh, alias, keep, sig, hot_slot, hot_rows, pad_out = tables
+    hs, points, codes, lengths, thresh, alias, keep, sig = tables
     lr0, lr_min, total_work = rates
     seq, pos, ctx, tgt, lab, grad, d_in, negs = scratch
     win = np.uint64(window)
-    pad_in, n_hot = emb_in.shape[0] - 1, hot_rows.shape[0]
+    pad_in, pad_out = emb_in.shape[0] - 1, emb_out.shape[0] - 1
     for w in range(w_lo, w_hi):
         a = starts[w]
         s, n = _keep_visits_kernel(tokens, a, starts[w + 1] - a, keep, _mix_kernel(key ^ np.uint64(walk0 + w)),
@@ -327,7 +318,7 @@ def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, em
                 s, r = _draw_kernel(s)
                 b_next = 1 + np.int64(((r >> _S32) * win) >> _S32)
                 s = _draw_negatives_kernel(s, thresh, alias, negs[(i + 1) & 1])
-                _prefetch_targets_kernel(emb_out, seq[i + 1], hs, points, lengths, negs[(i + 1) & 1], hot_slot)
+                _prefetch_targets_kernel(emb_out, seq[i + 1], hs, points, lengths, negs[(i + 1) & 1])
                 if i + 1 + window < n:
                     _prefetch_row_kernel(emb_in, seq[i + 1 + window])
             n_ctx = 0
@@ -336,11 +327,6 @@ def _train_walks_kernel(tokens, starts, w_lo, w_hi, walk0, tok0, key, emb_in, em
                     ctx[n_ctx] = seq[j]
                     n_ctx += 1
             n_tgt = _targets_kernel(seq[i], hs, points, codes, lengths, cur, tgt, lab)
-            if n_hot > 0:   # this thread's own copies of the most contended output rows
-                for t in range(n_tgt):
-                    slot = hot_slot[tgt[t]]
-                    if slot >= 0:
-                        tgt[t] = hot_base + slot
             ctx[n_ctx], tgt[n_tgt] = pad_in, pad_out   # completes an odd count to a tile (zero gradients)
             frac = min(np.float64(tok0 + a + pos[i]) / total_work, 1.0)
             lr = np.float32(max(lr_min, lr0 - (lr0 - lr_min) * frac))
@@ -368,25 +354,7 @@ def _train_serial_kernel(tokens, starts, walk0, tok0, key, emb_in, emb_out, tabl
     longest, max_ctx, max_tgt, negatives, _ = sizes
     scratch = _scratch_kernel(longest, max_ctx, max_tgt, emb_in.shape[1], negatives)
     _train_walks_kernel(tokens, starts, 0, starts.shape[0] - 1, walk0, tok0, key, emb_in, emb_out, tables, window,
-                        rates, scratch, 0)
-
-
-@numba.njit(cache=True, nogil=True)
-def _merge_hot_kernel(emb_out, hot_rows, base, snap, first):
-    """Fold a thread's copies of the hot output rows into the shared rows and refresh the copies.
-
-    emb_out float32: shared row ``hot_rows[h]`` (int64 [n_hot]) and the thread's copy at ``base + h``; snap float32
-    [n_hot, dim] holds the copy's value at the last merge. The shared row gets the thread's change since then
-    (copy - snap), and copy and snap become the new shared value. ``first``: only take the shared values.
-    """
-    dim = emb_out.shape[1]
-    for h in range(hot_rows.shape[0]):
-        shared, own, old = emb_out[hot_rows[h]], emb_out[base + h], snap[h]
-        for d in range(dim):
-            v = shared[d] if first else shared[d] + (own[d] - old[d])
-            shared[d] = v
-            own[d] = v
-            old[d] = v
+                        rates, scratch)
 
 
 @numba.njit(cache=True, nogil=True, parallel=True)
@@ -396,22 +364,15 @@ def _train_parallel_kernel(tokens, starts, walk0, tok0, key, emb_in, emb_out, ta
     ``i`` takes the blocks of walks ``i, i + T, i + 2T, ...``, so that all threads work on nearby positions of the
     corpus at any time and train with nearly the same learning rate (contiguous halves would put the second thread
     at a rate decayed by half a chunk from the start; on the planted-partition benchmark that cost 0.003-0.006
-    Micro-F1 with the hierarchical softmax). The hot output rows (``tables``; the top of the Huffman tree, which
-    every centre updates) are trained in per-thread copies merged after every block: written by all threads at
-    once, those cache lines bounced between the cores and two threads were slower than one."""
+    Micro-F1 with the hierarchical softmax)."""
     longest, max_ctx, max_tgt, negatives, n_threads = sizes
-    hot_rows, pad_out = tables[9], tables[10]
     n_walks = starts.shape[0] - 1
     n_blocks = (n_walks + _BLOCK - 1) // _BLOCK
     for tid in numba.prange(n_threads):
         scratch = _scratch_kernel(longest, max_ctx, max_tgt, emb_in.shape[1], negatives)
-        base = pad_out + 1 + tid * hot_rows.shape[0]
-        snap = np.empty((hot_rows.shape[0], emb_in.shape[1]), dtype=np.float32)
-        _merge_hot_kernel(emb_out, hot_rows, base, snap, True)
         for blk in range(tid, n_blocks, n_threads):
             _train_walks_kernel(tokens, starts, blk * _BLOCK, min(n_walks, (blk + 1) * _BLOCK), walk0, tok0, key,
-                                emb_in, emb_out, tables, window, rates, scratch, base)
-            _merge_hot_kernel(emb_out, hot_rows, base, snap, False)
+                                emb_in, emb_out, tables, window, rates, scratch)
 
 
 @numba.njit(cache=True, nogil=True)
@@ -605,15 +566,6 @@ def _resolve_counts(walks, n_nodes, counts, chunk_walks) -> np.ndarray:
         tokens, _ = _compact(chunk, n_nodes)
         total += np.bincount(tokens, minlength=n_nodes)
     return total
-
-
-def _hot_rows(hs, counts, n_out, threads) -> np.ndarray:
-    """Output rows trained in per-thread copies when several threads run (int64, empty otherwise): the top
-    ``_HOT_ROWS`` inner nodes of the Huffman tree (the last merges; every centre's path starts there). Negative
-    sampling has none: its rows are the centres and negatives, spread over all nodes."""
-    if threads == 1 or not hs:
-        return np.zeros(0, dtype=np.int64)
-    return np.arange(max(0, n_out - _HOT_ROWS), n_out, dtype=np.int64)
 
 
 def _check_init(init, n_nodes, dim):
@@ -827,11 +779,7 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         thresh, alias = alias_table(counts.astype(np.float64) ** 0.75)
         points, codes, lengths = np.zeros((1, 1), np.int32), np.zeros((1, 1), np.uint8), np.zeros(1, np.int32)
         n_out, max_tgt = n_nodes, negatives + 1
-    hot_rows = _hot_rows(hs, counts, n_out, threads)
-    hot_slot = np.full(n_out if hot_rows.size else 0, -1, dtype=np.int32)
-    hot_slot[hot_rows] = np.arange(hot_rows.size, dtype=np.int32)
-    tables = (hs, points, codes, lengths, thresh, alias, keep_thresholds(counts, subsample), sigmoid_table(),
-              hot_slot, hot_rows, n_out)
+    tables = (hs, points, codes, lengths, thresh, alias, keep_thresholds(counts, subsample), sigmoid_table())
     rates = (learning_rate, min_learning_rate, float(epochs) * n_tokens)
     # One extra zero row in each matrix: the padding row of the kernels' 2 x 2 tiles (it stays zero).
     emb_in = _weight_matrix((n_nodes + 1, dim), memmap_dir, "input")
@@ -844,8 +792,7 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
             vectors_in[:] = vectors
         else:
             vectors_in[rows] = vectors
-    # ... and after it, every thread's copies of the hot output rows.
-    emb_out = _weight_matrix((n_out + 1 + threads * hot_rows.size, dim), memmap_dir, "output")
+    emb_out = _weight_matrix((n_out + 1, dim), memmap_dir, "output")
     kernel = _train_serial_kernel if threads == 1 else _train_parallel_kernel
 
     previous = numba.get_num_threads()
