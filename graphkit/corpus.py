@@ -34,7 +34,7 @@ import pyarrow.parquet as pq
 from . import progress
 from .errors import ConfigError
 from .faults import fault_point
-from .graph import CSRGraph
+from .graph import SparseGraph
 from .walks import (_check_int, _prepare, _run, alias_table, check_walk_options, check_walk_params, count_restarts,
                     count_visits, walk_diagnostics)
 
@@ -104,10 +104,10 @@ def _graph_fingerprint(graph_dir: Path) -> dict:
     return files
 
 
-def _open_graph(graph_dir: Path) -> CSRGraph:
+def _open_graph(graph_dir: Path) -> SparseGraph:
     if not (graph_dir / "graph.json").is_file():
         raise ConfigError(f"graph_dir {str(graph_dir)!r} holds no graph (graph.json is missing)")
-    return CSRGraph.load(graph_dir, mmap=True)
+    return SparseGraph.load(graph_dir, mmap=True)
 
 
 @contextmanager
@@ -135,7 +135,7 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
     itself and keeps at most one row group of walks in memory. Both files are written under temporary names and
     renamed into place, counts first, so the Parquet file's presence marks a complete shard.
     """
-    graph = CSRGraph.load(graph_dir, mmap=True)
+    graph = SparseGraph.load(graph_dir, mmap=True)
     alias = np.load(alias_path, mmap_mode="r") if alias_path is not None else None
     # check=False: the driver checked the graph files once (sorted rows for second-order walks)
     walker = _prepare(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
@@ -196,7 +196,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
                       n_workers=None, weighted=True, p=1.0, q=1.0, dead_end="stop") -> dict:
     """Write the walk corpus of the graph in ``graph_dir`` to ``corpus_dir`` as Parquet shards, with Dask.
 
-    The corpus equals ``random_walks(CSRGraph.load(graph_dir), per_node, length, seed, weighted=weighted, p=p, q=q,
+    The corpus equals ``random_walks(SparseGraph.load(graph_dir), per_node, length, seed, weighted=weighted, p=p, q=q,
     dead_end=dead_end)`` read shard after shard. It is never gathered: every task memory-maps the graph, writes its
     own shard and returns a small dict, so memory stays bounded by one row group per worker thread (plus the
     memory-mapped graph, and the alias table for weighted walks). Rerunning with the same arguments skips the shards
@@ -205,7 +205,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     Parameters
     ----------
     graph_dir : str or Path
-        A folder written by :meth:`CSRGraph.save`; workers must see it under the same path.
+        A folder written by :meth:`SparseGraph.save`; workers must see it under the same path.
     corpus_dir : str or Path
         Created if missing. If it holds a corpus planned with other parameters or another graph, nothing is touched
         and ``ConfigError`` is raised. Workers must see it under the same path.
@@ -309,7 +309,7 @@ def _settle_plan(corpus_dir: Path, plan: dict, threads: int) -> dict:
     return plan
 
 
-def _ensure_alias(graph: CSRGraph, corpus_dir: Path) -> Path:
+def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
     """The alias table as ``corpus_dir/alias.npy``, built straight into a memory-mapped temporary file and renamed
     into place (so a present file is a complete one); reused by a rerun."""
     final = corpus_dir / ALIAS
@@ -330,7 +330,7 @@ def _ensure_alias(graph: CSRGraph, corpus_dir: Path) -> Path:
     return final
 
 
-def _run_shards(client, graph: CSRGraph, graph_dir: Path, corpus_dir: Path, plan: dict) -> dict:
+def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, plan: dict) -> dict:
     import distributed
 
     for stale in corpus_dir.glob("*.tmp-*"):  # left by a crashed run; we hold the lock, so nobody writes them now
@@ -374,7 +374,7 @@ def _run_shards(client, graph: CSRGraph, graph_dir: Path, corpus_dir: Path, plan
     return manifest
 
 
-def _diagnostics(graph: CSRGraph, corpus_dir: Path, shards: list[dict], per_node: int) -> dict:
+def _diagnostics(graph: SparseGraph, corpus_dir: Path, shards: list[dict], per_node: int) -> dict:
     visits = np.zeros(graph.n_nodes, dtype=np.int64)
     for shard in shards:
         visits += np.load(corpus_dir / shard["counts"], mmap_mode="r")

@@ -19,7 +19,7 @@ import warnings
 import numpy as np
 
 from .errors import ConfigError, GraphDataWarning
-from .graph import CSRGraph
+from .graph import SparseGraph
 
 __all__ = ["EdgeHoldout", "holdout_edges", "link_prediction", "node_classification", "neighbour_overlap",
            "procrustes_rotation", "procrustes_residual", "DEFAULT_RATIOS"]
@@ -90,7 +90,7 @@ class EdgeHoldout(tuple):
 
     Attributes
     ----------
-    train_graph : CSRGraph
+    train_graph : SparseGraph
     positives : ndarray of int32, shape (n_held_out, 2)
     negatives : ndarray of int32, shape (n_negatives, 2)
     counts : dict of str to int
@@ -118,9 +118,9 @@ def _edge_keys(graph) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     dst = np.asarray(graph.indices, dtype=np.int64)
     src = np.repeat(np.arange(n, dtype=np.int64), np.diff(indptr))
     keys = src * np.int64(n) + dst
-    # Membership tests below binary-search these keys; CSRGraph.from_edges builds sorted, duplicate-free rows.
+    # Membership tests below binary-search these keys; SparseGraph.from_edges builds sorted, duplicate-free rows.
     if keys.size > 1 and not np.all(keys[1:] > keys[:-1]):
-        raise ConfigError("graph rows must be sorted ascending without duplicates (as CSRGraph.from_edges builds them)")
+        raise ConfigError("graph rows must be sorted ascending without duplicates (as SparseGraph.from_edges builds them)")
     return src, dst, keys
 
 
@@ -232,7 +232,7 @@ def holdout_edges(graph, fraction=0.1, *, seed=0) -> EdgeHoldout:
 
     Parameters
     ----------
-    graph : CSRGraph
+    graph : SparseGraph
         Rows sorted ascending without duplicate entries; an undirected graph stores both directions of each edge.
     fraction : float, default 0.1
         Share of the candidate edges (undirected edges, or arcs, without self-loops) to hold out, in (0, 1);
@@ -245,7 +245,7 @@ def holdout_edges(graph, fraction=0.1, *, seed=0) -> EdgeHoldout:
     EdgeHoldout
         Unpacks as ``(train_graph, positives, negatives)``:
 
-        - ``train_graph`` : CSRGraph without the held-out edges (both directions when undirected), same nodes,
+        - ``train_graph`` : SparseGraph without the held-out edges (both directions when undirected), same nodes,
           weights and ``directed`` flag;
         - ``positives`` : ndarray of int32, shape (n_held_out, 2): held-out edges, ``u < v`` when undirected, in
           CSR order;
@@ -256,11 +256,11 @@ def holdout_edges(graph, fraction=0.1, *, seed=0) -> EdgeHoldout:
     Raises
     ------
     ConfigError
-        ``graph`` is not a CSRGraph, has unsorted rows or is not symmetric where it claims to be undirected;
+        ``graph`` is not a SparseGraph, has unsorted rows or is not symmetric where it claims to be undirected;
         ``fraction`` or ``seed`` is out of range.
     """
-    if not isinstance(graph, CSRGraph):
-        raise ConfigError(f"graph must be a CSRGraph, got {type(graph).__name__}")
+    if not isinstance(graph, SparseGraph):
+        raise ConfigError(f"graph must be a SparseGraph, got {type(graph).__name__}")
     fraction = _check_ratio("fraction", fraction)
     rng = np.random.default_rng(_check_seed(seed))
     n = graph.n_nodes
@@ -298,7 +298,7 @@ def holdout_edges(graph, fraction=0.1, *, seed=0) -> EdgeHoldout:
     indptr = np.asarray(graph.indptr, dtype=np.int64).copy()
     indptr[1:] -= np.cumsum(removed)
     weights = None if graph.weights is None else np.asarray(graph.weights)[keep]
-    train = CSRGraph.from_arrays(indptr, np.asarray(graph.indices)[keep], weights, directed=graph.directed)
+    train = SparseGraph.from_arrays(indptr, np.asarray(graph.indices)[keep], weights, directed=graph.directed)
 
     degree = np.diff(np.asarray(graph.indptr, dtype=np.int64))
     if graph.directed:

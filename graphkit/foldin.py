@@ -13,17 +13,17 @@ import pyarrow.parquet as pq
 
 from .config import RefreshConfig
 from .errors import StoreError
-from .graph import CSRGraph
+from .graph import SparseGraph
 
 __all__ = ["fold_in", "neighbour_mean_vectors"]
 
 
-def neighbour_mean_vectors(graph: CSRGraph, known: np.ndarray, vectors: np.ndarray, targets: np.ndarray):
+def neighbour_mean_vectors(graph: SparseGraph, known: np.ndarray, vectors: np.ndarray, targets: np.ndarray):
     """Weighted mean of the known neighbours' vectors for each target node.
 
     Parameters
     ----------
-    graph : CSRGraph
+    graph : SparseGraph
     known : ndarray of int64, shape (n_nodes,)
         Row of each node in ``vectors``, or -1 when the node has no vector.
     vectors : ndarray of float32, shape (n_known, dim)
@@ -71,7 +71,7 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
     plan = plan_run(cfg)
     with run_lock(cfg):
         ingest = stage_ingest(cfg, plan)
-        graph = CSRGraph.load(Path(plan["ingest_dir"]) / "graph")
+        graph = SparseGraph.load(Path(plan["ingest_dir"]) / "graph")
         nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
         ids = nodes.column("node_id").combine_chunks()
         if cfg.input.hash_ids:

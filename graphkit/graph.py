@@ -11,13 +11,13 @@ import numpy as np
 
 from .errors import ConfigError
 
-__all__ = ["CSRGraph"]
+__all__ = ["SparseGraph"]
 
 _META = "graph.json"
 
 
 @dataclass(frozen=True, eq=False)
-class CSRGraph:
+class SparseGraph:
     """A graph over dense node indices ``0..n_nodes-1`` in compressed sparse row form.
 
     The out-neighbours of node ``v`` are ``indices[indptr[v]:indptr[v + 1]]``, sorted ascending, with the matching
@@ -39,7 +39,7 @@ class CSRGraph:
 
     # ------------------------------------------------------------------ construction
     @classmethod
-    def from_arrays(cls, indptr, indices, weights=None, *, directed=False, validate=True) -> "CSRGraph":
+    def from_arrays(cls, indptr, indices, weights=None, *, directed=False, validate=True) -> "SparseGraph":
         """Wrap existing CSR arrays, fixing dtypes (a copy only when the dtype or layout differs).
 
         Parameters
@@ -61,7 +61,7 @@ class CSRGraph:
         return graph
 
     @classmethod
-    def from_edges(cls, src, dst, weights=None, *, n_nodes=None, directed=False) -> "CSRGraph":
+    def from_edges(cls, src, dst, weights=None, *, n_nodes=None, directed=False) -> "SparseGraph":
         """Build a CSR graph from an edge list over dense indices.
 
         Duplicate edges are merged (weights summed); an undirected graph gets both directions of every edge.
@@ -164,7 +164,7 @@ class CSRGraph:
         return folder
 
     @classmethod
-    def load(cls, folder, *, mmap=True) -> "CSRGraph":
+    def load(cls, folder, *, mmap=True) -> "SparseGraph":
         """Open a graph written by :meth:`save`, memory-mapped read-only by default."""
         folder = Path(folder)
         meta = json.loads((folder / _META).read_text())

@@ -22,7 +22,7 @@ import pyarrow.parquet as pq
 from .config import RefreshConfig
 from .errors import GateFailure
 from .faults import fault_point
-from .graph import CSRGraph
+from .graph import SparseGraph
 from .ingest import ingest_tables, validate_edge_tables
 from .io import digest, fingerprint_files, read_json, write_json_atomic
 
@@ -106,7 +106,7 @@ def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     """Open the memory-mapped CSR written by ingest and check its invariants."""
     t0 = time.perf_counter()
     folder = Path(plan["ingest_dir"]) / "graph"
-    graph = CSRGraph.load(folder)
+    graph = SparseGraph.load(folder)
     graph.validate()
     deg = graph.degrees()
     return {"graph_dir": str(folder), "n_nodes": graph.n_nodes, "adjacency_entries": graph.n_edges,
@@ -307,7 +307,7 @@ def _write_reports(cfg: RefreshConfig, plan: dict, version: int, graph: dict, wa
     from .store import list_versions, save_diagnostics
 
     try:
-        degrees = CSRGraph.load(Path(plan["ingest_dir"]) / "graph").degrees()
+        degrees = SparseGraph.load(Path(plan["ingest_dir"]) / "graph").degrees()
         visits = None
         counts_path = Path(plan["walks_dir"])
         if (counts_path / "manifest.json").exists():

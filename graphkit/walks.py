@@ -64,7 +64,7 @@ import numba
 import numpy as np
 
 from .errors import ConfigError
-from .graph import CSRGraph
+from .graph import SparseGraph
 
 __all__ = ["random_walks", "walk_range", "count_visits", "count_restarts", "alias_table", "walk_diagnostics",
            "loglog_slope", "check_walk_options", "DEAD_ENDS", "P_Q_RANGE"]
@@ -483,8 +483,8 @@ def _check_threads(threads):
 
 
 def _check_graph(graph):
-    if not isinstance(graph, CSRGraph):
-        raise ConfigError(f"graph must be a CSRGraph, got {type(graph).__name__}")
+    if not isinstance(graph, SparseGraph):
+        raise ConfigError(f"graph must be a SparseGraph, got {type(graph).__name__}")
 
 
 def _readonly(a):
@@ -529,7 +529,7 @@ def alias_table(graph, *, out=None) -> np.ndarray:
 
     Parameters
     ----------
-    graph : CSRGraph
+    graph : SparseGraph
         With ``weights`` (finite and > 0).
     out : ndarray of uint64, shape (n_edges,), optional
         Where to write the table (for example a memory-mapped ``.npy`` file); allocated when omitted.
@@ -596,7 +596,7 @@ def _prepare(graph, *, weighted, p, q, dead_end, alias=None, check=True) -> _Wal
         bad = int(_first_unsorted_kernel(indptr, indices))
         if bad >= 0:
             raise ConfigError(f"second-order walks (p, q not 1) need every node's out-neighbours sorted ascending; "
-                              f"node {bad} is not (build the graph with CSRGraph.from_edges)")
+                              f"node {bad} is not (build the graph with SparseGraph.from_edges)")
     return _Walker(indptr, indices, alias, acceptance_thresholds(p, q), second, dead_end == "restart")
 
 
@@ -629,7 +629,7 @@ def walk_range(graph, start, stop, *, per_node, length, seed, threads=None, weig
 
     Parameters
     ----------
-    graph : CSRGraph
+    graph : SparseGraph
         Walks follow the stored out-edges (both directions of an undirected edge are stored).
     start, stop : int
         ``0 <= start <= stop <= per_node * graph.n_nodes``.
@@ -682,7 +682,7 @@ def random_walks(graph, per_node, length, seed=0, *, threads=None, weighted=True
 
     Parameters
     ----------
-    graph : CSRGraph
+    graph : SparseGraph
     per_node : int
         Number of passes, ``>= 1``.
     length : int
@@ -803,7 +803,7 @@ def walk_diagnostics(visit_counts, degrees, *, per_node, in_degrees=None, n_rest
     visit_counts : array_like of int, shape (n_nodes,)
         Occurrences of every node in the corpus (:func:`count_visits`, summed over shards).
     degrees : array_like of int, shape (n_nodes,)
-        Out-degree of every node (``CSRGraph.degrees()``).
+        Out-degree of every node (``SparseGraph.degrees()``).
     per_node : int
         Walks started at every node; the corpus has ``per_node * n_nodes`` walks.
     in_degrees : array_like of int, shape (n_nodes,), optional

@@ -9,7 +9,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from graphkit.errors import EdgeTableError, GraphDataWarning
-from graphkit.graph import CSRGraph
+from graphkit.graph import SparseGraph
 from graphkit.ingest import ingest_edges
 
 
@@ -22,7 +22,7 @@ def _ingest(tmp_path, edges, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", GraphDataWarning)
         info = ingest_edges(edges, tmp_path / "out", drop_null_ids=True, **kw)
-    graph = CSRGraph.load(tmp_path / "out" / "graph")
+    graph = SparseGraph.load(tmp_path / "out" / "graph")
     ids = pq.read_table(tmp_path / "out" / "nodes.parquet").column("node_id").to_pylist()
     return info, graph, ids
 

@@ -13,7 +13,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from graphkit.errors import EdgeTableError
-from graphkit.graph import CSRGraph
+from graphkit.graph import SparseGraph
 from graphkit.ingest import EdgeTable, ingest_tables, validate_edge_tables
 
 
@@ -23,7 +23,7 @@ def _w(path, **cols):
 
 
 def _load(out):
-    g = CSRGraph.load(out / "graph")
+    g = SparseGraph.load(out / "graph")
     t = pq.read_table(out / "nodes.parquet")
     return g, list(zip(t.column("node_kind").to_pylist(), t.column("node_id").to_pylist()))
 
