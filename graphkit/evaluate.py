@@ -13,11 +13,11 @@ nodes or edges; the nearest-neighbour search of the drift measure is ``O(sample 
 from __future__ import annotations
 
 import numbers
-import operator
 import warnings
 
 import numpy as np
 
+from .checks import check_int as _check_int
 from .errors import ConfigError, GraphDataWarning
 from .graph import SparseGraph
 
@@ -36,15 +36,6 @@ _MAX_BATCH = 1 << 22
 
 
 # ---------------------------------------------------------------------------------------------------- checks
-def _check_int(name, value, minimum, maximum=None) -> int:
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral):
-        raise ConfigError(f"{name} must be an integer, got {value!r}")
-    value = operator.index(value)
-    if value < minimum:
-        raise ConfigError(f"{name} must be >= {minimum}, got {value!r}")
-    if maximum is not None and value > maximum:
-        raise ConfigError(f"{name} must be <= {maximum}, got {value!r}")
-    return value
 
 
 def _check_seed(seed) -> int:

@@ -39,7 +39,6 @@ With ``threads=1`` the result is bit-identical across runs and independent of ho
 from __future__ import annotations
 
 import numbers
-import operator
 import os
 import queue
 import tempfile
@@ -56,6 +55,8 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from . import progress
+from .checks import check_int as _check_int
+from .rng import _G, _LOW32, _S32, _mix_kernel
 from .errors import ConfigError
 from .huffman import build_huffman
 
@@ -68,14 +69,6 @@ TRAIN_SALT = 0xD1B54A32D192ED03
 #: Salt of the seed sequence of the initial input vectors.
 INIT_SALT = 0x2545F491
 
-_G = np.uint64(0x9E3779B97F4A7C15)
-_M1 = np.uint64(0xBF58476D1CE4E5B9)
-_M2 = np.uint64(0x94D049BB133111EB)
-_S27 = np.uint64(27)
-_S30 = np.uint64(30)
-_S31 = np.uint64(31)
-_S32 = np.uint64(32)
-_LOW32 = np.uint64(0xFFFFFFFF)
 _MASK64 = (1 << 64) - 1
 #: Dot products are clipped to +-_MAX_DOT before the sigmoid (the table's range): the gradient lost beyond it is
 #: below 0.25 % of the learning rate.
@@ -87,14 +80,6 @@ _BLOCK = 64
 
 
 # ---------------------------------------------------------------------------------------------------- numba kernels
-@numba.njit(cache=True, nogil=True, inline="always")
-def _mix_kernel(z):
-    """splitmix64 output function of a uint64."""
-    z = (z ^ (z >> _S30)) * _M1
-    z = (z ^ (z >> _S27)) * _M2
-    return z ^ (z >> _S31)
-
-
 @numba.njit(cache=True, nogil=True, inline="always")
 def _draw_kernel(s):
     """Advance stream ``s`` (uint64); returns (new state, 64 random bits)."""
@@ -486,15 +471,6 @@ def initial_vectors(n_nodes: int, dim: int, seed: int, *, out=None) -> np.ndarra
     return emb
 
 
-def _check_int(name, value, minimum, maximum=None) -> int:
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral):
-        raise ConfigError(f"{name} must be an integer, got {value!r}")
-    value = operator.index(value)
-    if value < minimum:
-        raise ConfigError(f"{name} must be >= {minimum}, got {value!r}")
-    if maximum is not None and value > maximum:
-        raise ConfigError(f"{name} must be <= {maximum}, got {value!r}")
-    return value
 
 
 def _check_rate(name, value, minimum, strict) -> float:

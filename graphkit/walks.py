@@ -57,26 +57,19 @@ from __future__ import annotations
 
 import math
 import numbers
-import operator
 from typing import NamedTuple
 
 import numba
 import numpy as np
 
+from .checks import check_int as _check_int
+from .rng import _G, _LOW32, _S32, _mix_kernel
 from .errors import ConfigError
 from .graph import SparseGraph
 
 __all__ = ["random_walks", "walk_range", "count_visits", "count_restarts", "alias_table", "walk_diagnostics",
            "loglog_slope", "check_walk_options", "DEAD_ENDS", "P_Q_RANGE"]
 
-_G = np.uint64(0x9E3779B97F4A7C15)
-_M1 = np.uint64(0xBF58476D1CE4E5B9)
-_M2 = np.uint64(0x94D049BB133111EB)
-_S30 = np.uint64(30)
-_S27 = np.uint64(27)
-_S31 = np.uint64(31)
-_S32 = np.uint64(32)
-_LOW32 = np.uint64(0xFFFFFFFF)
 _TWO32 = np.uint64(1 << 32)
 _ONE = np.uint64(1)
 _ALWAYS = np.uint64(1 << 63)
@@ -132,14 +125,6 @@ else:
 
 
 # ---------------------------------------------------------------------------------------------------- numba kernels
-@numba.njit(cache=True, nogil=True, inline="always")
-def _mix_kernel(z):
-    """splitmix64 output function of a uint64."""
-    z = (z ^ (z >> _S30)) * _M1
-    z = (z ^ (z >> _S27)) * _M2
-    return z ^ (z >> _S31)
-
-
 @numba.njit(cache=True, nogil=True, inline="always")
 def _bounded_kernel(s, d):
     """Advance stream ``s`` and draw a uniform integer below ``d`` (uint64, ``1 <= d < 2**32``).
@@ -441,16 +426,6 @@ def _count_restarts_kernel(walks, indptr):
 
 
 # ---------------------------------------------------------------------------------------------------- checks
-def _check_int(name, value, minimum, maximum=None):
-    """Return ``value`` as a Python int, or raise ConfigError naming ``name`` and echoing the value."""
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral):
-        raise ConfigError(f"{name} must be an integer, got {value!r}")
-    value = operator.index(value)
-    if value < minimum:
-        raise ConfigError(f"{name} must be >= {minimum}, got {value!r}")
-    if maximum is not None and value > maximum:
-        raise ConfigError(f"{name} must be <= {maximum}, got {value!r}")
-    return value
 
 
 def check_walk_params(per_node, length, seed):
