@@ -173,6 +173,42 @@ def _run(con, name: str, params: dict, *, create: str | None = None):
     return con.execute((f"create {create} as " if create else "") + sql, bind(sql, params))
 
 
+#: Rows per batch when the sorted adjacency streams out of DuckDB (about 12 MB of int32 + float32 per batch).
+FETCH_BATCH_ROWS = 1 << 20
+
+
+def _fetch_adjacency(result, n_nodes: int, n_entries: int, weighted: bool):
+    """Stream ``edge_index`` rows (sorted by source, then target) into CSR arrays allocated once.
+
+    Only one batch of the result is in Python at a time, so the peak is the final arrays plus DuckDB's own
+    memory limit, not a second full copy of the adjacency.
+    """
+    indptr = np.zeros(n_nodes + 1, dtype=np.int64)
+    indices = np.empty(n_entries, dtype=np.int32)
+    wts = np.empty(n_entries, dtype=np.float32) if weighted else None
+    pos, last = 0, 0
+    for batch in result.to_arrow_reader(FETCH_BATCH_ROWS):
+        k = batch.num_rows
+        if pos + k > n_entries:
+            raise EdgeTableError(f"adjacency has more than the {n_entries} entries counted")  # pragma: no cover
+        src = batch.column(0).to_numpy()
+        if k and (src[0] < last or np.any(src[1:] < src[:-1])):
+            raise RuntimeError("the adjacency came out of DuckDB unsorted")  # pragma: no cover (a DuckDB change)
+        if k:  # sorted by source: count within the batch's own range of sources, O(batch) not O(nodes)
+            first = int(src[0])
+            counts = np.bincount(src - first)
+            indptr[1 + first:1 + first + counts.size] += counts
+            last = int(src[-1])
+        indices[pos:pos + k] = batch.column(1).to_numpy()
+        if weighted:
+            wts[pos:pos + k] = batch.column(2).to_numpy()
+        pos += k
+    if pos != n_entries:
+        raise EdgeTableError(f"adjacency has {pos} entries, {n_entries} counted")  # pragma: no cover
+    np.cumsum(indptr, out=indptr)
+    return indptr, indices, wts
+
+
 def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: str) -> None:
     """Register ``raw_edges(src_kind, src, dst_kind, dst, weight, ts)``: every table projected and stacked."""
     id_sql = "bigint" if id_type == "integer" else "varchar"
@@ -258,7 +294,7 @@ def _inline_params(sql: str, params: dict) -> str:
 
 def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: bool = False,
                   window: dict | None = None, threads: int | None = None,
-                  memory_limit: str | None = "2GB") -> dict[str, Any]:
+                  memory_limit: str | None = "1GB") -> dict[str, Any]:
     """Read edge tables with DuckDB and write the graph a run works on.
 
     Rows outside the time window are left out; rows with a null id are dropped (``drop_null_ids``) or rejected;
@@ -276,7 +312,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     window : dict, optional
         ``since``, ``until``, ``as_of`` (aware datetimes or None) and ``half_life_days`` (float or None), as
         :meth:`graphkit.config.InputSection.time_window` gives.
-    memory_limit : str, default "2GB"
+    memory_limit : str, default "1GB"
         DuckDB's memory limit; past it the joins and sorts spill to ``out_dir/duckdb_tmp``.
 
     Returns
@@ -317,19 +353,15 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         con.sql("select node_idx, node_kind, node_id from nodes order by node_idx") \
            .write_parquet(str(out_dir / "nodes.parquet"), compression="zstd")
         kinds = dict(con.sql("select node_kind, count(*) from nodes group by node_kind order by 1").fetchall())
-        arrays = _run(con, "edge_index", params).fetchnumpy()
+        weighted = any(t.weight for t in tables) or params["half_life_days"] is not None
+        n_entries = n_distinct if directed else 2 * n_distinct
+        # Streamed batches keep the ORDER BY only while insertion order is preserved (work_connection turns it off)
+        con.execute("set preserve_insertion_order = true")
+        indptr, indices, wts = _fetch_adjacency(_run(con, "edge_index", params), n_nodes, n_entries, weighted)
     except duckdb.Error as exc:
         raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
     finally:
         con.close()
-    src_idx = np.asarray(arrays["src_idx"], dtype=np.int64)
-    indices = np.ascontiguousarray(arrays["dst_idx"], dtype=np.int32)
-    weighted = any(t.weight for t in tables) or params["half_life_days"] is not None
-    wts = np.ascontiguousarray(arrays["weight"], dtype=np.float32) if weighted else None
-    del arrays
-    indptr = np.zeros(n_nodes + 1, dtype=np.int64)
-    np.cumsum(np.bincount(src_idx, minlength=n_nodes), out=indptr[1:])
-    del src_idx
     graph = SparseGraph.from_arrays(indptr, indices, wts, directed=directed)
     graph.save(out_dir / "graph")
     n_merged = n_kept - n_distinct

@@ -36,8 +36,11 @@ def _as_nx(graph, ids, directed):
     return g
 
 
+@pytest.mark.parametrize("batch_rows", [None, 7], ids=["one-batch", "7-row-batches"])
 @pytest.mark.parametrize("directed", [False, True])
-def test_ingest_matches_networkx(tmp_path, directed):
+def test_ingest_matches_networkx(tmp_path, monkeypatch, directed, batch_rows):
+    if batch_rows:  # the sorted adjacency streams out of DuckDB in many small batches, across node boundaries
+        monkeypatch.setattr("graphkit.ingest.FETCH_BATCH_ROWS", batch_rows)
     rng = np.random.default_rng(11)
     src = [f"acct-{i}" for i in rng.integers(0, 40, 300)]
     dst = [f"acct-{i}" for i in rng.integers(0, 40, 300)]
@@ -122,3 +125,34 @@ def test_bad_tables_raise(tmp_path, case, match):
         edges = _write(tmp_path / "t.parquet", sender=pa.array([], pa.string()), receiver=pa.array([], pa.string()))
     with pytest.raises(EdgeTableError, match=match):
         ingest_edges(edges, tmp_path / "out", source=src, target="receiver", **kw)
+
+
+def test_adjacency_matches_scipy_csr_when_duckdb_runs_in_parallel(tmp_path):
+    """Reference: scipy.sparse's COO -> CSR conversion (duplicates summed, columns sorted per row).
+
+    Big enough (60,000 rows) that DuckDB sorts and streams with several threads, which is where the order of the
+    streamed batches has to hold; the weights check that each weight stays with its own entry.
+    """
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(5)
+    n = 4000
+    ids = np.sort(rng.choice(10**9, n, replace=False))  # node_idx is the rank of the id
+    a, b = rng.integers(0, n, 60_000), rng.integers(0, n, 60_000)
+    w = rng.uniform(0.5, 2.0, a.size)
+    path = _write(tmp_path / "t.parquet", s=pa.array(ids[a]), d=pa.array(ids[b]), w=w)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", GraphDataWarning)
+        ingest_edges(path, tmp_path / "out", source="s", target="d", weight="w", threads=2)
+    graph = SparseGraph.load(tmp_path / "out" / "graph")
+
+    keep = a != b
+    m = sp.coo_matrix((w[keep], (a[keep], b[keep])), shape=(n, n))
+    ref = (m + m.T).tocsr()
+    ref.sum_duplicates()
+    ref.sort_indices()
+    present = np.unique(np.concatenate([a[keep], b[keep]]))
+    assert present.size == n  # every id has an edge, so the dense indices are the ranks 0..n-1
+    np.testing.assert_array_equal(graph.indptr, ref.indptr)
+    np.testing.assert_array_equal(graph.indices, ref.indices)
+    np.testing.assert_allclose(graph.weights, ref.data, rtol=1e-5)
