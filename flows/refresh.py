@@ -101,13 +101,13 @@ def train_task(cfg: RefreshConfig, plan: dict, which: str = "published") -> dict
     return pipeline.stage_train(cfg, plan, which)
 
 
-@task(name="evaluate", persist_result=True)
+@task(name="evaluate", persist_result=False)  # recomputed by every run: nothing to keep in PREFECT_HOME
 def evaluate_task(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict | None) -> dict:
     """Quality figures: link prediction on held-out edges, node classification, drift against the current version."""
     return pipeline.stage_evaluate(cfg, plan, train, eval_train)
 
 
-@task(name="publish", retries=2, retry_delay_seconds=10, retry_condition_fn=_io_failure, persist_result=True)
+@task(name="publish", retries=2, retry_delay_seconds=10, retry_condition_fn=_io_failure, persist_result=False)
 def publish_task(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict,
                  evaluation: dict | None, holdout: dict | None) -> int:
     """Check the quality gates and publish the vectors as a new current version."""

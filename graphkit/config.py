@@ -125,6 +125,8 @@ class StoreSection(_Section):
     path: str = Field(description="Folder of the versioned embedding store (relative to the config file).")
     keep: int = Field(default=14, ge=1, description="Complete versions kept (plus the current and pinned ones).")
     align: bool = Field(default=True, description="Rotate each new version onto the current one (Procrustes).")
+    keep_work_days: float = Field(default=7.0, ge=0, description="Days the stage folders of runs that did not "
+                                  "finish are kept for a resume; each finished run removes older ones.")
 
 
 class EvaluateSection(_Section):

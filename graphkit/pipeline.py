@@ -76,6 +76,7 @@ def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
     return {
         "store": str(store),
         "work": str(work),
+        "keep_work_days": cfg.store.keep_work_days,
         "fingerprint": fingerprint,
         "ingest_dir": str(ingest_dir),
         "graph_dir": graph_dir,
@@ -355,11 +356,17 @@ def run_lock(cfg: RefreshConfig):
         os.umask(old_mask)
 
 
-def finish_run(plan: dict) -> None:
-    """Remove the run's work folders once its version is published (the walk corpus can be large)."""
+def finish_run(plan: dict) -> list[str]:
+    """Remove the run's work folders once its version is published or recorded as failed (the walk corpus can be
+    large), and those of unfinished runs older than ``[store] keep_work_days``. Returns the removed paths."""
+    removed = []
     for key in ("ingest_dir", "walks_dir", "train_dir", "holdout_dir", "eval_walks_dir", "eval_train_dir"):
-        if plan.get(key):
+        if plan.get(key) and Path(plan[key]).exists():
             shutil.rmtree(plan[key], ignore_errors=True)
+            removed.append(plan[key])
+    from .store import clean_work
+
+    return removed + clean_work(plan["store"], older_than_days=plan.get("keep_work_days", 7.0))
 
 
 def refresh(cfg: RefreshConfig) -> int:

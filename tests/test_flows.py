@@ -424,3 +424,20 @@ def test_served_deployment_runs_a_refresh(harness, tmp_path):
     assert run.state.type == StateType.COMPLETED, run.state
     assert [(r["version"], r["is_current"]) for r in list_versions(store)] == [(1, True)]
     assert run.parameters["overrides"][0] == f'store.path="{store}"'
+
+
+def test_a_run_leaves_at_most_its_flow_result_in_prefect_storage(harness, tmp_path):
+    """Stage results live in the stage folders (removed with them); evaluate and publish persist nothing; the
+    only file a run adds to Prefect's local result storage is the flow's return value (a few bytes)."""
+    from prefect.settings import get_current_settings
+
+    from conftest import FAST_DEMO
+
+    storage = Path(get_current_settings().results.local_storage_path).expanduser()
+    before = set(storage.iterdir()) if storage.is_dir() else set()
+    state = _refresh(tmp_path / "store", *FAST_DEMO)
+    assert state.is_completed(), state.message
+    added = (set(storage.iterdir()) if storage.is_dir() else set()) - before
+    assert len(added) <= 1, sorted(p.name for p in added)
+    assert all(p.stat().st_size < 1000 for p in added)
+    assert list((tmp_path / "store" / "work").iterdir()) == []  # stage folders and their records are gone

@@ -264,3 +264,47 @@ def test_warm_start_counts_and_moves_less(tmp_path):
     _, vc = read_version(tmp_path, cold["version"])
     _, vw = read_version(tmp_path, warm["version"])
     assert neighbour_overlap(v1, vw, k=10) > neighbour_overlap(v1, vc, k=10)
+
+
+def _stage_folder(work, name, age_days, now):
+    folder = work / name
+    folder.mkdir(parents=True)
+    (folder / "part-00000.parquet").write_bytes(b"x")
+    os.utime(folder, (now - age_days * 86400, now - age_days * 86400))
+    return folder
+
+
+def test_clean_work_removes_only_old_stage_folders(tmp_path):
+    from graphkit.store import clean_work
+
+    now = time.time()
+    work = tmp_path / "work"
+    old = _stage_folder(work, "walks-aaaa", 8, now)
+    old_ingest = _stage_folder(work, "ingest-bbbb", 30, now)
+    fresh = _stage_folder(work, "train-cccc", 6.9, now)
+    kept = _stage_folder(work, "walks-dddd", 30, now)  # the current run's, however old
+    other = _stage_folder(work, "notes", 30, now)  # not a stage folder: never touched
+    target = _stage_folder(tmp_path / "elsewhere", "walks-eeee", 30, now)
+    (work / "walks-ffff").symlink_to(target, target_is_directory=True)
+
+    removed = clean_work(tmp_path, keep=[str(kept)], older_than_days=7, now=now)
+    assert sorted(removed) == sorted([str(old), str(old_ingest)])
+    assert not old.exists() and not old_ingest.exists()
+    assert fresh.exists() and kept.exists() and other.exists() and target.exists() and (work / "walks-ffff").is_symlink()
+    assert clean_work(tmp_path / "no-store", older_than_days=0) == []
+    assert sorted(clean_work(tmp_path, older_than_days=0, now=now)) == sorted([str(fresh), str(kept)])
+
+
+def test_a_finished_refresh_removes_abandoned_stage_folders(tmp_path):
+    """An earlier run killed after its walks, whose parameters then changed, leaves folders nothing resumes from."""
+    now = time.time()
+    abandoned = _stage_folder(tmp_path / "work", "walks-0123456789abcdef", 10, now)
+    recent = _stage_folder(tmp_path / "work", "train-0123456789abcdef", 1, now)
+    cfg = load_config(ROOT / "sample_parquet" / "demo.toml", [f'store.path="{tmp_path}"', *FAST_DEMO])
+    graphkit.refresh(cfg)
+    assert not abandoned.exists() and recent.exists()
+    assert sorted(p.name for p in (tmp_path / "work").iterdir()) == [recent.name]  # the run's own are gone too
+    cfg = load_config(ROOT / "sample_parquet" / "demo.toml",
+                      [f'store.path="{tmp_path}"', *FAST_DEMO, "store.keep_work_days=0"])
+    graphkit.refresh(cfg)
+    assert not recent.exists()
