@@ -33,7 +33,9 @@ def cmd_refresh(args) -> int:
     _prefect_env()
     from flows.artifacts import console_progress
     from flows.refresh import refresh_flow
+    from flows.tempserver import guard_temporary_server
 
+    guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
     with console_progress():  # bars on a terminal only
         version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
     print(f"published version {version} to {cfg.store_path}")

@@ -270,3 +270,52 @@ def test_hashed_ids_and_permissions(published, tmp_path):
     for p in (root / "store").rglob("*"):
         mode = p.stat().st_mode
         assert not mode & 0o022, f"{p} is group/world writable: {oct(mode)}"
+
+
+def _descendants(proc) -> dict:
+    """pid -> (process, command line) of every live descendant."""
+    import psutil
+
+    found = {}
+    try:
+        for child in proc.children(recursive=True):
+            try:
+                found[child.pid] = (child, " ".join(child.cmdline()))
+            except psutil.Error:
+                pass
+    except psutil.NoSuchProcess:
+        pass
+    return found
+
+
+@pytest.mark.parametrize("fault", ["walks", None], ids=["killed-at-walks", "normal-exit"])
+def test_cli_run_never_leaves_its_temporary_prefect_server(published, tmp_path, fault):
+    """Without PREFECT_API_URL the CLI runs on Prefect's temporary server; SIGKILL must not orphan it."""
+    import time
+
+    import psutil
+
+    env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
+    if fault:
+        env["GRAPHKIT_FAULT"] = fault
+    cfg = published / "ok.toml"
+    proc = subprocess.Popen([sys.executable, "-m", "graphkit.cli", "refresh", str(cfg), "--set",
+                             f'store.path="{tmp_path / "store"}"'], cwd=ROOT, env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    parent = psutil.Process(proc.pid)
+    seen = {}
+    while proc.poll() is None:  # note every helper process the run starts: the server and its watchdog
+        # again each time: a child just forked still shows our command line, a zombie shows none
+        seen.update({k: v for k, v in _descendants(parent).items() if v[1]})
+        time.sleep(0.05)
+    stderr = proc.stderr.read()
+    assert proc.returncode == (-9 if fault else 0), stderr[-2000:]
+    server = [p for p, cmd in seen.values() if "uvicorn" in cmd and "prefect.server" in cmd]
+    watchdog = [p for p, cmd in seen.values() if "flows.tempserver" in cmd]
+    assert len(server) == 1 and len(watchdog) == 1, [cmd for _, cmd in seen.values()]
+    deadline = time.time() + 20
+    alive = server + watchdog
+    while alive and time.time() < deadline:
+        alive = [p for p in alive if p.is_running() and p.status() != psutil.STATUS_ZOMBIE]
+        time.sleep(0.1)
+    assert alive == [], f"left running: {alive}"

@@ -1,0 +1,73 @@
+"""The temporary Prefect server of a CLI run, stopped even when the run is killed.
+
+Without ``PREFECT_API_URL``, Prefect starts a temporary server as a child process for the life of the run and
+stops it at exit. A run killed with SIGKILL (the kernel's out-of-memory killer, a scheduler's timeout) never gets
+to stop it, and the server stays behind, holding its port and the Prefect database. :func:`guard_temporary_server`
+starts that server up front and, beside it, a small watchdog process in its own session that waits on a pipe
+whose only writer is this process: the pipe closes when this process ends, however it ends, and the watchdog
+then stops the server if it is still running. A normal exit is unchanged (Prefect stops its server at exit; the
+watchdog finds it gone).
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+
+__all__ = ["guard_temporary_server"]
+
+_STOP_TIMEOUT = 5.0
+_KEEP: list[int] = []  # the pipe's write end, open for the life of the process
+
+
+def guard_temporary_server() -> int | None:
+    """Start Prefect's temporary server and its watchdog when no API URL is configured.
+
+    Returns
+    -------
+    int or None
+        The watchdog's process id, or None when a server is configured (nothing to guard).
+    """
+    from prefect.settings import get_current_settings
+
+    if get_current_settings().api.url:
+        return None
+    import psutil
+    from prefect.server.api.server import SubprocessASGIServer
+
+    server = SubprocessASGIServer()  # the one instance Prefect's client starts and reuses when no API URL is set
+    server.start()
+    pid = server.server_process.pid
+    started = psutil.Process(pid).create_time()
+    read_fd, write_fd = os.pipe()  # both ends non-inheritable: no other child keeps the pipe open
+    watchdog = subprocess.Popen([sys.executable, "-m", "flows.tempserver", str(read_fd), str(pid), repr(started)],
+                                pass_fds=(read_fd,), start_new_session=True, stdin=subprocess.DEVNULL,
+                                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    os.close(read_fd)
+    _KEEP.append(write_fd)  # never closed by us: it closes when this process ends
+    return watchdog.pid
+
+
+def watch(read_fd: int, pid: int, started: float) -> None:
+    """Block until the pipe's writer is gone, then stop process ``pid`` if it is still the server we were given
+    (same process id *and* start time, so a recycled id is never touched)."""
+    import psutil
+
+    with os.fdopen(read_fd, "rb") as pipe:
+        pipe.read()  # returns at end of file: the run's process has ended
+    try:
+        proc = psutil.Process(pid)
+        if abs(proc.create_time() - started) > 1e-3:
+            return
+        proc.terminate()
+        try:
+            proc.wait(_STOP_TIMEOUT)
+        except psutil.TimeoutExpired:
+            proc.kill()
+    except psutil.NoSuchProcess:
+        return
+
+
+if __name__ == "__main__":
+    watch(int(sys.argv[1]), int(sys.argv[2]), float(sys.argv[3]))
