@@ -215,10 +215,25 @@ def cmd_sql(args) -> int:
 
     from .store import connect
 
+    if (args.query is None) == (args.file is None):
+        raise InputError("sql: give either a query or --file FILE, not both")
+    if args.file is not None:
+        try:
+            query = Path(args.file).read_text()
+        except OSError as exc:
+            raise InputError(f"{args.file}: cannot read the query file ({exc.strerror or exc})") from None
+    else:
+        query = args.query
+    params = {}
+    for item in args.param:
+        name, eq, value = item.partition("=")
+        if not eq or not name.strip().isidentifier():
+            raise InputError(f"--param {item!r}: expected NAME=VALUE")
+        params[name.strip()] = value
     con = connect(args.store)
     try:
         try:
-            rel = con.sql(args.query)
+            rel = con.sql(query, params=params or None)
         except duckdb.Error as exc:
             raise InputError(f"query failed: {str(exc).splitlines()[0]}") from None
         if rel is not None:
@@ -226,6 +241,16 @@ def cmd_sql(args) -> int:
     finally:
         con.close()
     return 0
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"{text} is not a positive number")
+    return value
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -300,8 +325,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     q = sub.add_parser("sql", help="run a DuckDB query over the store (views embeddings, versions)")
     q.add_argument("store")
-    q.add_argument("query")
-    q.add_argument("--max-rows", type=int, default=40)
+    q.add_argument("query", nargs="?", help="the query (or use --file)")
+    q.add_argument("--file", help="read the query from this .sql file (e.g. one of sql/examples/)")
+    q.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
+                   help="bind $NAME in the query to VALUE, as text (repeatable)")
+    q.add_argument("--max-rows", type=_positive_int, default=40, help="rows shown at most (default 40)")
     q.set_defaults(func=cmd_sql)
     return p
 

@@ -12,7 +12,7 @@ from pathlib import Path
 from datetime import date, datetime, timedelta, timezone
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError
 
@@ -145,6 +145,16 @@ class EvaluateSection(_Section):
     drift_sample: int = Field(default=2000, ge=10, description="Query nodes for the neighbour-overlap drift.")
     seed: int = Field(default=0, ge=0, description="Seed of the holdout and of the evaluation splits.")
 
+    @field_validator("ratios")
+    @classmethod
+    def _shares_between_0_and_1(cls, ratios):
+        if not ratios:
+            raise ValueError("give at least one training share")
+        bad = [r for r in ratios if not 0 < r < 1]
+        if bad:
+            raise ValueError(f"training shares must be between 0 and 1 (exclusive), got {bad[0]}")
+        return ratios
+
 
 class GatesSection(_Section):
     """Quality gates: a run that fails one is recorded as failed and the current version stays current."""
@@ -236,10 +246,13 @@ def apply_overrides(data: dict, overrides: list[str] | tuple[str, ...], *, where
         if "=" not in item or "." not in item.split("=", 1)[0]:
             raise ConfigError(f"{where}: expected section.key=value, got {item!r}")
         dotted, value = item.split("=", 1)
-        section, key = dotted.strip().split(".", 1)
+        section, key = (part.strip() for part in dotted.strip().split(".", 1))
         if section not in _SECTIONS:
-            raise ConfigError(f"{where}: unknown section [{section}]{_suggest(section, _SECTIONS)}")
-        data.setdefault(section, {})[key.strip()] = _parse_value(value.strip())
+            raise ConfigError(f"{where} {dotted.strip()}: unknown section [{section}]{_suggest(section, _SECTIONS)}")
+        allowed = _SECTIONS[section].model_fields
+        if key not in allowed:
+            raise ConfigError(f"{where} {dotted.strip()}: unknown key [{section}] {key}{_suggest(key, allowed)}")
+        data.setdefault(section, {})[key] = _parse_value(value.strip())
     return data
 
 
@@ -255,9 +268,13 @@ def _check_keys(data: dict, where: str) -> None:
                 raise ConfigError(f"{where}: unknown key [{section}] {key}{_suggest(key, allowed)}")
 
 
-def _format_error(exc: ValidationError, where: str) -> str:
+def _format_error(exc: ValidationError, where: str, overridden=frozenset()) -> str:
     err = exc.errors()[0]
     loc = [str(p) for p in err["loc"]]
+    if len(loc) > 2 and loc[1] != "tables":  # a member of a union type (since.date, since.datetime): the key
+        loc = loc[:2]
+    if tuple(loc[:2]) in overridden:  # the value came from the command line, not the file
+        where = f"--set {loc[0]}.{loc[1]}"
     if len(loc) >= 2:
         name = f"[{loc[0]}] {'.'.join(loc[1:])}"
     elif loc:
@@ -276,13 +293,15 @@ def _format_error(exc: ValidationError, where: str) -> str:
     return f"{where}: {name}: {msg[0].lower() + msg[1:]}, got {err.get('input')!r}"
 
 
-def config_from_dict(data: dict, *, base_dir: str = ".", where: str = "<config>") -> RefreshConfig:
-    """Validate a raw mapping (as read from TOML) into a :class:`RefreshConfig`."""
+def config_from_dict(data: dict, *, base_dir: str = ".", where: str = "<config>",
+                     overridden=frozenset()) -> RefreshConfig:
+    """Validate a raw mapping (as read from TOML) into a :class:`RefreshConfig`; errors about the
+    ``(section, key)`` pairs in ``overridden`` name ``--set`` instead of ``where``."""
     _check_keys(data, where)
     try:
         return RefreshConfig.model_validate({**data, "base_dir": str(base_dir), "source_file": where})
     except ValidationError as exc:
-        raise ConfigError(_format_error(exc, where)) from None
+        raise ConfigError(_format_error(exc, where, overridden)) from None
 
 
 def load_config(path, overrides=()) -> RefreshConfig:
@@ -312,5 +331,8 @@ def load_config(path, overrides=()) -> RefreshConfig:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{where}: not valid TOML ({exc})") from None
+    _check_keys(data, where)  # the file's own keys first, so that a typo is blamed on the right place
     data = apply_overrides(data, overrides)
-    return config_from_dict(data, base_dir=str(path.resolve().parent), where=where)
+    overridden = frozenset(tuple(part.strip() for part in item.split("=", 1)[0].split(".", 1))
+                           for item in overrides or ())
+    return config_from_dict(data, base_dir=str(path.resolve().parent), where=where, overridden=overridden)

@@ -259,7 +259,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     if dask_address is None:
         threads = n_workers or len(os.sched_getaffinity(0))
         cluster = distributed.LocalCluster(processes=False, n_workers=1, threads_per_worker=threads,
-                                           dashboard_address=":0")  # None still binds 8787
+                                           dashboard_address="127.0.0.1:0")  # None still binds 8787; never 0.0.0.0
     else:
         cluster = None
     try:

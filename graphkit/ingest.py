@@ -357,7 +357,8 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         n_entries = n_distinct if directed else 2 * n_distinct
         # Streamed batches keep the ORDER BY only while insertion order is preserved (work_connection turns it off)
         con.execute("set preserve_insertion_order = true")
-        indptr, indices, wts = _fetch_adjacency(_run(con, "edge_index", params), n_nodes, n_entries, weighted)
+        sql = load_sql("edge_index")  # a relation, not a DB-API result: streamed without an extra copy
+        indptr, indices, wts = _fetch_adjacency(con.sql(sql, params=bind(sql, params)), n_nodes, n_entries, weighted)
     except duckdb.Error as exc:
         raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
     finally:

@@ -24,16 +24,29 @@ from .errors import GateFailure
 from .faults import fault_point
 from .graph import SparseGraph
 from .ingest import ingest_tables, validate_edge_tables
+from .ids import salt_from_env
 from .io import digest, fingerprint_files, read_json, write_json_atomic
+from .quality import check_labels_table
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_holdout", "stage_walks", "stage_train",
            "stage_evaluate", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point"]
 
 
 def preflight(cfg: RefreshConfig) -> dict[str, Any]:
-    """Checks that must fail within seconds, before any work: input files, their format, columns and rows."""
-    return validate_edge_tables(cfg.tables(), drop_null_ids=cfg.input.drop_null_ids,
+    """Checks that must fail within seconds, before any work: the store path and its lock, the id-hashing key,
+    the labels table, and the edge tables' files, format, columns and rows."""
+    from .store import check_store_writable
+
+    check_store_writable(cfg.store_path)
+    if cfg.input.hash_ids:
+        salt_from_env(cfg.input.hash_salt_env)
+    info = validate_edge_tables(cfg.tables(), drop_null_ids=cfg.input.drop_null_ids,
                                 window=cfg.input.time_window())
+    if cfg.labels_path is not None:
+        check_labels_table(cfg.labels_path, id_column=cfg.evaluate.label_id_column,
+                           label_column=cfg.evaluate.label_column, kind=cfg.evaluate.label_kind,
+                           kinds={k for t in cfg.tables() for k in (t.source_kind, t.target_kind)})
+    return info
 
 
 def plan_run(cfg: RefreshConfig) -> dict[str, Any]:

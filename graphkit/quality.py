@@ -37,6 +37,34 @@ def make_holdout(graph_dir, out_dir, *, fraction: float, seed: int) -> dict[str,
     return info
 
 
+def check_labels_table(path: str, *, id_column: str, label_column: str, kind: str | None = None,
+                       kinds=None) -> list:
+    """The checks on a labels table that need no graph: its files exist and are Parquet, the two columns exist,
+    and ``kind`` is one of the node kinds the edge tables produce (``kinds``). Returns the files.
+
+    Raises
+    ------
+    EdgeTableError
+        Naming the file and the ``[evaluate]`` key at fault.
+    """
+    from .io import resolve_input_files
+
+    files = resolve_input_files(path)
+    try:
+        schema = pq.read_schema(files[0])
+    except (OSError, pa.ArrowException) as exc:
+        raise EdgeTableError(f"{files[0]}: [evaluate] labels is not a readable Parquet file "
+                             f"({str(exc).splitlines()[0]})") from None
+    for key, col in (("label_id_column", id_column), ("label_column", label_column)):
+        if col not in schema.names:
+            raise EdgeTableError(f"{files[0]}: no column {col!r} for [evaluate] {key} "
+                                 f"(columns: {', '.join(schema.names)})")
+    if kind is not None and kinds is not None and kind not in kinds:
+        raise EdgeTableError(f"[evaluate] label_kind = {kind!r} is not a node kind of the edge tables "
+                             f"(kinds: {', '.join(sorted(kinds))})")
+    return files
+
+
 def load_labels(path: str, nodes_parquet, *, id_column: str, label_column: str,
                 kind: str | None = None) -> tuple[np.ndarray, np.ndarray, dict[str, int]]:
     """Map a labels table (one row per node and label) onto node indices.
@@ -48,14 +76,7 @@ def load_labels(path: str, nodes_parquet, *, id_column: str, label_column: str,
     """
     import duckdb
 
-    from .io import resolve_input_files
-
-    files = resolve_input_files(path)
-    schema = pq.read_schema(files[0])
-    for key, col in (("label_id_column", id_column), ("label_column", label_column)):
-        if col not in schema.names:
-            raise EdgeTableError(f"{files[0]}: no column {col!r} for [evaluate] {key} "
-                                 f"(columns: {', '.join(schema.names)})")
+    files = check_labels_table(path, id_column=id_column, label_column=label_column)
     con = duckdb.connect()
     try:
         con.read_parquet([str(f) for f in files]).create_view("labels")

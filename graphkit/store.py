@@ -83,6 +83,36 @@ def store_lock(store):
         os.close(fd)  # closing releases the flock; a killed owner's lock vanishes with its process
 
 
+def check_store_writable(store) -> None:
+    """Fail fast, before a run starts, on a store path that cannot work or a store another refresh is writing.
+
+    Only looks: creates nothing. The run takes the lock for real later (:func:`store_lock`); this check is for a
+    clear error within seconds instead of after the run has started.
+    """
+    store = Path(store)
+    if store.exists() and not store.is_dir():
+        raise StoreError(f"{store}: [store] path names a file, not a folder")
+    existing = next((p for p in [store, *store.parents] if p.exists()), None)
+    if existing is not None and not os.access(existing, os.W_OK | os.X_OK):
+        raise StoreError(f"{existing}: no permission to write the store here")
+    path = store / _LOCK
+    if not path.exists() or path.is_symlink():
+        return
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)
+    except OSError:
+        return  # store_lock gives the precise error
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            owner = os.pread(fd, 64, 0).decode(errors="replace").strip() or "unknown"
+            raise StoreError(f"{store}: another refresh holds the store lock (pid {owner}); "
+                             "wait for it to finish") from None
+    finally:
+        os.close(fd)
+
+
 def _version_files(store: Path, rel_path: str) -> tuple[Path, Path]:
     parquet = (store / rel_path).resolve()
     return parquet, parquet.with_suffix(".duckdb")
