@@ -174,7 +174,7 @@ def cmd_report(args) -> int:
 def cmd_promote(args) -> int:
     from .store import promote_version
 
-    promote_version(args.store, args.version)
+    promote_version(args.store, args.version, wait=args.wait)
     print(f"version {args.version} is current")
     return 0
 
@@ -182,7 +182,7 @@ def cmd_promote(args) -> int:
 def cmd_pin(args) -> int:
     from .store import pin_version
 
-    pin_version(args.store, args.version, not args.unpin)
+    pin_version(args.store, args.version, not args.unpin, wait=args.wait)
     print(f"version {args.version} {'unpinned' if args.unpin else 'pinned'}")
     return 0
 
@@ -234,13 +234,38 @@ def cmd_sql(args) -> int:
     try:
         try:
             rel = con.sql(query, params=params or None)
+            if rel is not None:
+                rel.show(max_rows=args.max_rows, max_width=10_000)
         except duckdb.Error as exc:
-            raise InputError(f"query failed: {str(exc).splitlines()[0]}") from None
-        if rel is not None:
-            rel.show(max_rows=args.max_rows, max_width=10_000)
+            raise InputError(_sql_error(exc)) from None
     finally:
         con.close()
     return 0
+
+
+#: DuckDB's words for a statement the read-only, file-less connection (``store.connect``) refuses.
+_REFUSED = ("attached in read-only mode", "configuration has been locked", "disabled by configuration",
+            "in read-only mode", "external access")
+
+
+def _sql_error(exc) -> str:
+    import duckdb
+
+    first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    if isinstance(exc, duckdb.PermissionException) or any(w in first.lower() for w in _REFUSED):
+        return ("query refused: SQL on a store is read-only and cannot read or write files, attach databases, "
+                f"install extensions or change settings ({first})")
+    return f"query failed: {first}"
+
+
+def _seconds(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not 0 <= value < float("inf"):
+        raise argparse.ArgumentTypeError(f"{text} is not a number of seconds >= 0")
+    return value
 
 
 def _positive_int(text: str) -> int:
@@ -300,12 +325,16 @@ def build_parser() -> argparse.ArgumentParser:
     pr = sub.add_parser("promote", help="make an older complete version current again")
     pr.add_argument("store")
     pr.add_argument("version", type=int)
+    pr.add_argument("--wait", type=_seconds, default=0.0, metavar="SECONDS",
+                    help="wait this long for a running refresh to release the store (default 0: refuse at once)")
     pr.set_defaults(func=cmd_promote)
 
     pn = sub.add_parser("pin", help="pin a version so that retention never deletes it")
     pn.add_argument("store")
     pn.add_argument("version", type=int)
     pn.add_argument("--unpin", action="store_true", help="remove the pin")
+    pn.add_argument("--wait", type=_seconds, default=0.0, metavar="SECONDS",
+                    help="wait this long for a running refresh to release the store (default 0: refuse at once)")
     pn.set_defaults(func=cmd_pin)
 
     fi = sub.add_parser("foldin", help="provisional vectors for new nodes from their known neighbours")

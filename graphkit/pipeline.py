@@ -266,21 +266,38 @@ def stage_evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict
     return {"metrics": metrics, "seconds": round(time.perf_counter() - t0, 3)}
 
 
+def run_id_of(plan: dict, train: dict) -> str:
+    """The id a run records in its version row, the same for every attempt of its publish.
+
+    ``plan["run_id"]`` when the plan carries one; otherwise derived from the plan and the training result the
+    vectors come from (its marker's figures and the vectors file's modification time), so a retry of the publish
+    task, or a rerun that resumes from the same trained vectors, recognises the version they published, while a
+    run that trains again gets a new id.
+    """
+    if plan.get("run_id"):
+        return str(plan["run_id"])
+    marker = {k: v for k, v in train.items() if k != "skipped"}
+    return digest({"plan": plan, "train": marker, "vectors_mtime_ns": os.stat(train["vectors"]).st_mtime_ns}, 32)
+
+
 def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict,
                   evaluation: dict | None = None, holdout: dict | None = None) -> int:
     """Check the gates and publish the trained vectors as a new current version; returns its number.
 
     A run that fails a gate is recorded as a ``failed`` version with the reasons and figures, the current
     version stays current, and :class:`GateFailure` is raised. The caller holds the store lock
-    (see :func:`run_lock`).
+    (see :func:`run_lock`). Idempotent per run (:func:`run_id_of`): a retry after a failure past the catalog
+    switch returns the version the first attempt published.
     """
     from .quality import failed_gates
-    from .store import align_to_current, publish_embeddings, record_failed_run
+    from .store import align_to_current, diagnostic_arrays, publish_embeddings, record_failed_run, version_of_run
 
+    run_id = run_id_of(plan, train)
+    done_before = version_of_run(plan["store"], run_id)
     node_ids, node_kinds = _published_ids(cfg, plan)
     vectors = np.load(train["vectors"])
     alignment = {"aligned_to": None}
-    if cfg.store.align:
+    if cfg.store.align and done_before is None:  # a retry is not aligned onto the version it published itself
         vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors)
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
@@ -298,28 +315,33 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
                "hashed_ids": cfg.input.hash_ids, "alignment": alignment}
     record = dict(params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"], counts=counts,
-                  timings=timings, metrics=metrics, objective=cfg.train.objective)
+                  timings=timings, metrics=metrics, objective=cfg.train.objective, run_id=run_id)
+    figures = _report_figures(cfg, plan)
     reasons = failed_gates(metrics, cfg.gates)
     if reasons:
         message = "failed quality gates: " + "; ".join(reasons)
         version = record_failed_run(plan["store"], message=message, **record)
-        _write_reports(cfg, plan, version, graph, walks)
+        _write_reports(cfg, plan, version, figures)
         raise GateFailure(f"{cfg.store_path}: run recorded as version {version}, not published: "
                           + "; ".join(reasons), version=version, metrics=metrics)
+    diagnostics = diagnostic_arrays(**figures) if figures is not None else None
     version = publish_embeddings(plan["store"], node_ids, vectors, node_kinds=node_kinds, keep=cfg.store.keep,
-                                 **record)
-    _write_reports(cfg, plan, version, graph, walks, vectors=vectors)
+                                 diagnostics=diagnostics, **record)
+    _write_reports(cfg, plan, version, figures, vectors=vectors)
     return version
 
 
-def _write_reports(cfg: RefreshConfig, plan: dict, version: int, graph: dict, walks: dict, vectors=None) -> None:
-    """The run's HTML report, next to the run in ``STORE/reports/``; a failure here never fails the run."""
+def _warn_report(exc: Exception) -> None:
     import logging
     import warnings
 
-    from .report import write_report
-    from .store import list_versions, save_diagnostics
+    logging.getLogger("graphkit").warning("could not write the run report: %s", exc)
+    warnings.warn(f"could not write the run report: {exc}", RuntimeWarning, stacklevel=3)
 
+
+def _report_figures(cfg: RefreshConfig, plan: dict) -> dict | None:
+    """Per-node degree, walk visits and first label of the run, for the version's diagnostics and the report;
+    None (with a warning) when they cannot be read: they are a convenience, the version is what matters."""
     try:
         degrees = SparseGraph.load(Path(plan["ingest_dir"]) / "graph").degrees()
         visits = None
@@ -328,15 +350,26 @@ def _write_reports(cfg: RefreshConfig, plan: dict, version: int, graph: dict, wa
             from .corpus import WalkCorpus
 
             visits = WalkCorpus(counts_path).visit_counts()
-        labels = _first_labels(cfg, plan, degrees.size)
-        if vectors is not None:
-            save_diagnostics(plan["store"], version, degrees=degrees, visit_counts=visits, labels=labels)
+        return {"degrees": degrees, "visit_counts": visits, "labels": _first_labels(cfg, plan, degrees.size)}
+    except Exception as exc:  # noqa: BLE001 - see above
+        _warn_report(exc)
+        return None
+
+
+def _write_reports(cfg: RefreshConfig, plan: dict, version: int, figures: dict | None, vectors=None) -> None:
+    """The run's HTML report, next to the run in ``STORE/reports/`` (outside the version, so after the switch);
+    a failure here never fails the run."""
+    from .report import write_report
+    from .store import list_versions
+
+    if figures is None:
+        return
+    try:
         write_report(Path(plan["store"]) / "reports" / f"version-{version:06d}.html", versions=list_versions(
-            plan["store"]), degrees=degrees, visit_counts=visits, vectors=vectors, labels=labels,
-            title=f"graphkit store {Path(plan['store']).name}: version {version}")
+            plan["store"]), degrees=figures["degrees"], visit_counts=figures["visit_counts"], vectors=vectors,
+            labels=figures["labels"], title=f"graphkit store {Path(plan['store']).name}: version {version}")
     except Exception as exc:  # noqa: BLE001 - the report is a convenience; the version is what matters
-        logging.getLogger("graphkit").warning("could not write the run report: %s", exc)
-        warnings.warn(f"could not write the run report: {exc}", RuntimeWarning, stacklevel=2)
+        _warn_report(exc)
 
 
 def _first_labels(cfg: RefreshConfig, plan: dict, n_nodes: int):

@@ -21,7 +21,9 @@ import fcntl
 import json
 import os
 import shutil
+import threading
 import time
+import uuid
 from contextlib import contextmanager
 from datetime import datetime, timezone
 from importlib.metadata import PackageNotFoundError, version as _pkg_version
@@ -38,7 +40,9 @@ from .errors import StoreError
 from .faults import fault_point
 from .sql import load_sql
 
-__all__ = ["connect", "publish_embeddings", "list_versions", "read_version", "store_lock", "clean_stale", "CATALOG"]
+__all__ = ["connect", "publish_embeddings", "record_failed_run", "version_of_run", "list_versions", "read_version",
+           "promote_version", "pin_version", "apply_retention", "store_lock", "clean_stale", "diagnostic_arrays",
+           "CATALOG"]
 
 CATALOG = "catalog.duckdb"
 _LOCK = ".lock"
@@ -59,32 +63,127 @@ def _version_dir(version: int) -> str:
     return f"versions/{version:06d}"
 
 
+#: Seconds a writer that finds the lock taken keeps re-reading the holder's pid when the lock file names no
+#: live process yet: the winner of a simultaneous start writes its pid a moment after taking the lock.
+_HOLDER_SETTLE_SECONDS = 1.0
+
+# The locks this process holds, by resolved store path: [pid, fd, depth]. The lock is re-entrant within the
+# process that holds it (a refresh holds it for the whole run; the publish inside takes it again), and a forked
+# child, whose pid differs, does not inherit the ownership.
+_HELD: dict[str, list] = {}
+_HELD_GUARD = threading.Lock()
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # alive, another user's
+        return True
+    return True
+
+
+def _lock_holder(fd) -> tuple[int, str] | None:
+    """(pid, purpose) the lock file names, when that process is alive; None otherwise."""
+    pid_text, _, purpose = os.pread(fd, 256, 0).decode(errors="replace").strip().partition(" ")
+    if not pid_text.isdigit() or not _pid_alive(int(pid_text)):
+        return None
+    return int(pid_text), purpose.strip() or "writer"
+
+
+def _held_message(store, holder, waited: float) -> str:
+    after = f" after waiting {waited:g} s" if waited > 0 else ""
+    if holder is None:
+        return (f"{store}: another writer holds the store lock (its process is unknown){after}; "
+                "wait for it to finish")
+    pid, purpose = holder
+    return f"{store}: another {purpose} holds the store lock (pid {pid}){after}; wait for it to finish"
+
+
+def _take_flock(fd, store, wait: float) -> None:
+    """Take the flock on ``fd``, waiting up to ``wait`` seconds, or raise ``StoreError`` naming the holder.
+
+    The holder is named only when the lock file holds the pid of a live process; a pid left by a dead writer, or
+    no pid yet (the holder took the lock a moment ago), is re-read for up to ``_HOLDER_SETTLE_SECONDS``, after
+    which the holder is reported as unknown rather than wrongly.
+    """
+    start = time.monotonic()
+    while True:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return
+        except BlockingIOError:
+            pass
+        holder = _lock_holder(fd)
+        elapsed = time.monotonic() - start
+        if elapsed >= wait and (holder is not None or elapsed >= _HOLDER_SETTLE_SECONDS):
+            raise StoreError(_held_message(store, holder, wait)) from None
+        time.sleep(0.02)
+
+
+def _held_here(store: Path):
+    entry = _HELD.get(str(store.resolve()))
+    return entry if entry is not None and entry[0] == os.getpid() else None
+
+
 @contextmanager
-def store_lock(store):
-    """Hold the store's writer lock (``fcntl`` on ``STORE/.lock``) or raise ``StoreError`` naming its owner."""
+def store_lock(store, *, wait: float = 0.0, purpose: str = "refresh"):
+    """Hold the store's writer lock (``fcntl.flock`` on ``STORE/.lock``) or raise ``StoreError`` naming its owner.
+
+    Every catalog writer holds it: a refresh for its whole run, and publish, a failed run's record, promote,
+    pin and retention for their catalog switch. It is re-entrant within the process that holds it, so these
+    functions work both inside a run and on their own.
+
+    Parameters
+    ----------
+    store : path
+        The store folder (created if needed).
+    wait : float
+        Seconds to wait for another writer to finish before giving up (default 0: refuse at once).
+    purpose : str
+        What the holder is doing, recorded beside its pid for the message a refused writer gets.
+    """
     store = Path(store)
     store.mkdir(parents=True, exist_ok=True, mode=0o755)
+    with _HELD_GUARD:
+        entry = _held_here(store)
+        if entry is not None:
+            entry[2] += 1
+    if entry is not None:
+        try:
+            yield
+        finally:
+            with _HELD_GUARD:
+                entry[2] -= 1
+        return
     path = store / _LOCK
     try:
         fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
     except OSError as exc:  # ELOOP: a symlink planted where the lock belongs is never followed
         raise StoreError(f"{path}: cannot open the store lock ({exc.strerror}); a symlink there is refused") from None
+    key = str(store.resolve())
     try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            owner = os.pread(fd, 64, 0).decode(errors="replace").strip() or "unknown"
-            raise StoreError(f"{store}: another refresh holds the store lock (pid {owner}); "
-                             "wait for it to finish") from None
+        _take_flock(fd, store, float(wait))
         os.ftruncate(fd, 0)
-        os.pwrite(fd, str(os.getpid()).encode(), 0)
-        yield
+        os.pwrite(fd, f"{os.getpid()} {purpose}".encode(), 0)
+        entry = [os.getpid(), fd, 1]
+        with _HELD_GUARD:
+            _HELD[key] = entry
+        try:
+            yield
+        finally:
+            with _HELD_GUARD:
+                entry[2] -= 1
+                if _HELD.get(key) is entry:
+                    del _HELD[key]
+            os.ftruncate(fd, 0)  # a released lock names nobody, so a later refusal cannot name a stale pid
     finally:
         os.close(fd)  # closing releases the flock; a killed owner's lock vanishes with its process
 
 
 def check_store_writable(store) -> None:
-    """Fail fast, before a run starts, on a store path that cannot work or a store another refresh is writing.
+    """Fail fast, before a run starts, on a store path that cannot work or a store another writer holds.
 
     Only looks: creates nothing. The run takes the lock for real later (:func:`store_lock`); this check is for a
     clear error within seconds instead of after the run has started.
@@ -96,21 +195,33 @@ def check_store_writable(store) -> None:
     if existing is not None and not os.access(existing, os.W_OK | os.X_OK):
         raise StoreError(f"{existing}: no permission to write the store here")
     path = store / _LOCK
-    if not path.exists() or path.is_symlink():
+    if not path.exists() or path.is_symlink() or _held_here(store) is not None:
         return
     try:
         fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)
     except OSError:
         return  # store_lock gives the precise error
     try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            owner = os.pread(fd, 64, 0).decode(errors="replace").strip() or "unknown"
-            raise StoreError(f"{store}: another refresh holds the store lock (pid {owner}); "
-                             "wait for it to finish") from None
+        _take_flock(fd, store, 0.0)
     finally:
         os.close(fd)
+
+
+def _fsync_dir(folder) -> None:
+    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _replace_durably(src, dst) -> None:
+    """``os.replace`` followed by an fsync of the folders involved, so the rename itself survives a power cut."""
+    src, dst = Path(src), Path(dst)
+    os.replace(src, dst)
+    _fsync_dir(dst.parent)
+    if src.parent.resolve() != dst.parent.resolve():
+        _fsync_dir(src.parent)
 
 
 def _version_files(store: Path, rel_path: str) -> tuple[Path, Path]:
@@ -119,16 +230,17 @@ def _version_files(store: Path, rel_path: str) -> tuple[Path, Path]:
 
 
 def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
-    """Open a store's catalog read-only, confined to the store.
+    """Open a store's catalog read-only, unable to change or read any file.
 
     Views: ``embeddings`` (the current version, or ``version``), ``versions``, and ``embeddings_vNNNNNN`` for
     every kept complete version; macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k)`` and
     ``pair_similarity(a_id, b_id)``. Each version's native DuckDB copy is attached read-only, so the views scan
     DuckDB's own storage instead of Parquet (a top-10 query over a million vectors is about ten times faster).
 
-    The connection is confined to the store folder (``enable_external_access = false`` with
-    ``allowed_directories`` set to the store): queries cannot read or write files elsewhere, and a query cannot
-    switch the setting back on.
+    Once the catalog and the versions are attached (read-only) and the views made, DuckDB's local file system is
+    switched off and its configuration locked: no statement on the connection can write a file (COPY, EXPORT,
+    ATTACH, INSTALL), read one (``read_csv``, ``read_parquet``), change the attached databases (they are
+    read-only) or change a setting back. Temporary tables and views, in memory, still work.
 
     Parameters
     ----------
@@ -140,7 +252,7 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
     Raises
     ------
     StoreError
-        When the folder holds no catalog, or the version is not a kept complete one.
+        When the folder holds no catalog, no complete version yet, or the version is not a kept complete one.
     """
     store = Path(store)
     path = store / CATALOG
@@ -150,33 +262,35 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
     try:
         rows = con.execute("select version, path, dim, is_current from versions where status = 'complete' "
                            "order by version").fetchall()
+        if not rows:
+            n_runs = con.execute("select count(*) from versions").fetchall()[0][0]
+            raise StoreError(f"{store}: no complete version yet ({n_runs} run(s) recorded, none published; "
+                             f"`graphkit versions {store}` shows why)")
         if version is not None and int(version) not in {r[0] for r in rows}:
             raise StoreError(f"{store}: no complete version {version} (kept: {', '.join(str(r[0]) for r in rows)})")
         for v, rel_path, dim, is_current in rows:
-            _, native = _version_files(store, rel_path)
-            if not native.exists():
-                continue  # the catalog's own Parquet view stays in use
+            parquet, native = _version_files(store, rel_path)
             alias = f"v{v:06d}"
-            con.execute(f"attach {_sql_literal(str(native))} as {alias} (read_only)")
-            body = f"select node_id, node_kind, provisional, vector from {alias}.embeddings"
+            if native.exists():
+                con.execute(f"attach {_sql_literal(str(native))} as {alias} (read_only)")
+                body = f"select node_id, node_kind, provisional, vector from {alias}.embeddings"
+            else:  # no native copy: Arrow reads the Parquet file, as DuckDB's own file system is switched off
+                import pyarrow.dataset as ds
+
+                con.register(f"_parquet_{alias}", ds.dataset(str(parquet), format="parquet"))
+                body = (f"select node_id, node_kind, provisional, vector::float[{int(dim)}] as vector "
+                        f"from _parquet_{alias}")
             con.execute(f"create or replace temp view embeddings_v{v:06d} as {body}")
             if (version is None and is_current) or v == version:
                 con.execute(f"create or replace temp view embeddings as {body}")
-        if version is not None and not _has_temp_view(con, "embeddings"):
-            rel_path, dim = next((r[1], r[2]) for r in rows if r[0] == version)
-            con.execute(load_sql("embeddings").format(kind="temp ", view="embeddings", dim=int(dim),
-                                                      path=_sql_literal(str(_version_files(store, rel_path)[0]))))
         con.execute("set allowed_directories = $dirs", {"dirs": [str(store.resolve()) + os.sep]})
-        con.execute("set enable_external_access = false")
+        con.execute("set enable_external_access = false")  # before the file system goes: it cannot be set after
+        con.execute("set disabled_filesystems = 'LocalFileSystem'")
+        con.execute("set lock_configuration = true")
     except BaseException:
         con.close()
         raise
     return con
-
-
-def _has_temp_view(con, name: str) -> bool:
-    return bool(con.execute("select count(*) from duckdb_views() where temporary and view_name = $n",
-                            {"n": name}).fetchall()[0][0])
 
 
 _JSON_COLUMNS = ("params", "input_fingerprint", "counts", "timings", "metrics")
@@ -262,8 +376,9 @@ def _version_table(node_ids, vectors, node_kinds, provisional) -> pa.Table:
                      "vector": pa.FixedSizeListArray.from_arrays(flat, dim)})
 
 
-def _write_version_files(store: Path, version: int, table: pa.Table) -> str:
-    """Write a version's Parquet file and native DuckDB copy aside, then rename the folder into place."""
+def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics: dict | None = None) -> str:
+    """Write everything of a version aside (Parquet file, native DuckDB copy, diagnostics), then rename the
+    folder into place; nothing is added to it afterwards."""
     final_dir = store / _version_dir(version)
     tmp_dir = store / "versions" / f".tmp-{version:06d}-{os.getpid()}"
     if final_dir.exists():  # a dead run renamed its folder but never reached the catalog: not visible, replace it
@@ -280,10 +395,16 @@ def _write_version_files(store: Path, version: int, table: pa.Table) -> str:
         con.execute("checkpoint")
     finally:
         con.close()
-    for name in ("embeddings.parquet", "embeddings.duckdb"):
+    names = ["embeddings.parquet", "embeddings.duckdb"]
+    if diagnostics:
+        np.savez_compressed(tmp_dir / "diagnostics.npz", **diagnostics)
+        names.append("diagnostics.npz")
+    for name in names:
         with open(tmp_dir / name, "rb") as fh:
             os.fsync(fh.fileno())
-    os.replace(tmp_dir, final_dir)
+    _fsync_dir(tmp_dir)
+    _replace_durably(tmp_dir, final_dir)
+    fault_point("publish-version-renamed")  # the version's folder in place, the catalog not yet switched
     return f"{_version_dir(version)}/embeddings.parquet"
 
 
@@ -302,6 +423,27 @@ def clean_stale(store) -> list[str]:
         else:
             p.unlink(missing_ok=True)
         removed.append(str(p))
+    return removed + _sweep_versions(store)
+
+
+def _sweep_versions(store: Path) -> list[str]:
+    """Remove version folders no reader can reach: those of expired versions (retention marks them in the
+    catalog switch and deletes them after it) and those numbered above every catalog row (a publish killed
+    after renaming its folder into place, before the switch). Call it only while holding the lock."""
+    if not (store / CATALOG).exists():
+        return []
+    con = _open_catalog(store)
+    try:
+        expired = {v for (v,) in con.execute("select version from versions where status = 'expired'").fetchall()}
+        top = con.execute("select coalesce(max(version), 0) from versions").fetchall()[0][0]
+    finally:
+        con.close()
+    removed = []
+    for folder in sorted((store / "versions").glob("[0-9]" * 6)):
+        v = int(folder.name)
+        if (v in expired or v > top) and folder.is_dir() and not folder.is_symlink():
+            shutil.rmtree(folder, ignore_errors=True)
+            removed.append(str(folder))
     return removed
 
 
@@ -366,6 +508,7 @@ def _update_catalog(store: Path, apply) -> Any:
     try:
         con.execute("begin transaction")
         con.execute(load_sql("versions"))
+        con.execute("alter table versions add column if not exists run_id varchar")  # catalogs from before it
         result = apply(con)
         _create_views(con, store)
         con.execute("commit")
@@ -378,12 +521,12 @@ def _update_catalog(store: Path, apply) -> Any:
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
     fault_point("publish")  # new catalog complete, not yet switched in
-    os.replace(tmp, catalog)
+    _replace_durably(tmp, catalog)
     return result
 
 
 def _row(version: int, status: str, *, params, fingerprint, counts, timings, metrics, objective, message=None,
-         path=None, n_nodes=None, dim=None, is_current=False) -> dict[str, Any]:
+         path=None, n_nodes=None, dim=None, is_current=False, run_id=None) -> dict[str, Any]:
     return {
         "version": version, "created_at": datetime.now(timezone.utc).replace(tzinfo=None),
         "status": status, "is_current": is_current, "pinned": False, "path": path,
@@ -391,7 +534,7 @@ def _row(version: int, status: str, *, params, fingerprint, counts, timings, met
         "params": json.dumps(params, default=str), "input_fingerprint": json.dumps(fingerprint, default=str),
         "counts": json.dumps(counts, default=str), "timings": json.dumps(timings, default=str),
         "metrics": json.dumps(metrics or {}, default=str), "package_version": _package_version(),
-        "message": message,
+        "message": message, "run_id": run_id,
     }
 
 
@@ -400,10 +543,59 @@ def _insert(con, row: dict) -> None:
     con.execute(f"insert into versions ({cols}) values ({', '.join('$' + k for k in row)})", row)
 
 
+def version_of_run(store, run_id: str) -> tuple[int, str] | None:
+    """(version, status) of the catalog row a run with this id recorded, or None when it recorded none."""
+    if not run_id or not (Path(store) / CATALOG).exists():
+        return None
+    con = _open_catalog(store)
+    try:
+        cols = {c for (c,) in con.execute("select column_name from duckdb_columns() "
+                                           "where table_name = 'versions'").fetchall()}
+        if "run_id" not in cols:
+            return None
+        rows = con.execute("select version, status from versions where run_id = $r order by version",
+                           {"r": str(run_id)}).fetchall()
+    finally:
+        con.close()
+    return (int(rows[0][0]), rows[0][1]) if rows else None
+
+
+def _expire(con, keep: int) -> list[int]:
+    """Mark all but the ``keep`` newest complete versions (and the current and pinned ones) ``expired``, inside
+    the caller's catalog transaction. Returns their numbers; their folders go after the switch."""
+    rows = con.execute("select version, is_current, pinned from versions where status = 'complete' "
+                       "order by version desc").fetchall()
+    drop = [v for i, (v, cur, pin) in enumerate(rows) if i >= keep and not cur and not pin]
+    for v in drop:
+        con.execute("update versions set status = 'expired' where version = $v", {"v": v})
+    return drop
+
+
+def _check_keep(keep) -> None:
+    if int(keep) < 1:
+        raise StoreError(f"[store] keep must be >= 1, got {keep}")
+
+
+def diagnostic_arrays(*, degrees, visit_counts=None, labels=None) -> dict[str, np.ndarray]:
+    """Per-node figures the report draws later (degree, walk visits, first label), as stored in a version's
+    ``diagnostics.npz`` (pass them to :func:`publish_embeddings`)."""
+    arrays = {"degrees": np.asarray(degrees, np.int64)}
+    if visit_counts is not None:
+        arrays["visit_counts"] = np.asarray(visit_counts, np.int64)
+    if labels is not None:
+        arrays["labels"] = np.array(["" if x is None else str(x) for x in labels])
+    return arrays
+
+
 def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params: dict, fingerprint: list,
                        counts: dict, timings: dict, metrics: dict | None = None, objective: str | None = None,
-                       node_kinds: pa.Array | None = None, provisional=None, keep: int | None = None) -> int:
+                       node_kinds: pa.Array | None = None, provisional=None, keep: int | None = None,
+                       run_id: str | None = None, diagnostics: dict | None = None) -> int:
     """Publish a complete new version and make it current.
+
+    Holds the store's writer lock (re-entrant: a refresh already holds it). Everything of the version is
+    written before it becomes visible; the catalog switch makes it current and applies retention in one
+    transaction.
 
     Parameters
     ----------
@@ -421,57 +613,78 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
     keep : int, optional
         Retention: keep this many complete versions (plus the current and pinned ones); see
         :func:`apply_retention`.
+    run_id : str, optional
+        The run's id, recorded in the version's row. A retry of the same run (same id) whose earlier attempt
+        got through the catalog switch gets that version back instead of publishing the vectors twice.
+        Default: a fresh id (every call publishes).
+    diagnostics : dict of str to ndarray, optional
+        Per-node figures for the report (:func:`diagnostic_arrays`), stored in the version's folder.
 
     Returns
     -------
     int
-        The new version number.
+        The new version number (or the one this run already published).
     """
     store = Path(store)
     if len(node_ids) != vectors.shape[0]:
         raise ValueError(f"node_ids has {len(node_ids)} entries but vectors has {vectors.shape[0]} rows")
     if not np.all(np.isfinite(vectors)):
         raise ValueError("refusing to publish vectors with NaN or infinite values")
-    store.mkdir(parents=True, exist_ok=True, mode=0o755)
-    t0 = time.perf_counter()
-    table = _version_table(node_ids, vectors, node_kinds, provisional)
-    catalog = store / CATALOG
-    version = 1
-    if catalog.exists():
-        con = duckdb.connect(str(catalog), read_only=True)
-        try:
-            version = _next_version(con)
-        finally:
-            con.close()
-    rel_path = _write_version_files(store, version, table)
-    timings = {**timings, "publish": round(time.perf_counter() - t0, 3)}
-    row = _row(version, "complete", params=params, fingerprint=fingerprint, counts=counts, timings=timings,
-               metrics=metrics, objective=objective, path=rel_path, n_nodes=int(vectors.shape[0]),
-               dim=int(vectors.shape[1]), is_current=True)
-
-    def apply(con):
-        con.execute("update versions set is_current = false where is_current")
-        _insert(con, row)
-
-    _update_catalog(store, apply)
     if keep is not None:
-        apply_retention(store, keep)
+        _check_keep(keep)
+    run_id = str(run_id) if run_id else uuid.uuid4().hex
+    with store_lock(store, purpose="publish"):
+        known = version_of_run(store, run_id)
+        if known is not None and known[1] != "failed":
+            _sweep_versions(store)  # an attempt killed or failed after the switch may have left expired folders
+            return known[0]
+        t0 = time.perf_counter()
+        table = _version_table(node_ids, vectors, node_kinds, provisional)
+        version = 1
+        if (store / CATALOG).exists():
+            con = _open_catalog(store)
+            try:
+                version = _next_version(con)
+            finally:
+                con.close()
+        rel_path = _write_version_files(store, version, table, diagnostics)
+        timings = {**timings, "publish": round(time.perf_counter() - t0, 3)}
+        row = _row(version, "complete", params=params, fingerprint=fingerprint, counts=counts, timings=timings,
+                   metrics=metrics, objective=objective, path=rel_path, n_nodes=int(vectors.shape[0]),
+                   dim=int(vectors.shape[1]), is_current=True, run_id=run_id)
+
+        def apply(con):
+            con.execute("update versions set is_current = false where is_current")
+            _insert(con, row)
+            return _expire(con, int(keep)) if keep is not None else []
+
+        expired = _update_catalog(store, apply)
+        fault_point("publish-catalog-switched")  # visible and current; expired folders not yet removed
+        for v in expired:
+            shutil.rmtree(store / _version_dir(v), ignore_errors=True)
     return version
 
 
 def record_failed_run(store, *, message: str, params: dict, fingerprint: list, counts: dict, timings: dict,
-                      metrics: dict | None = None, objective: str | None = None) -> int:
-    """Record a run that was refused (e.g. by a quality gate) as a ``failed`` version; the current one stays."""
+                      metrics: dict | None = None, objective: str | None = None, run_id: str | None = None) -> int:
+    """Record a run that was refused (e.g. by a quality gate) as a ``failed`` version; the current one stays.
+
+    Holds the writer lock; a retry of the same ``run_id`` gets the version already recorded."""
     store = Path(store)
-    store.mkdir(parents=True, exist_ok=True, mode=0o755)
+    run_id = str(run_id) if run_id else uuid.uuid4().hex
+    with store_lock(store, purpose="refresh"):
+        known = version_of_run(store, run_id)
+        if known is not None:
+            return known[0]
 
-    def apply(con):
-        version = _next_version(con)
-        _insert(con, _row(version, "failed", params=params, fingerprint=fingerprint, counts=counts,
-                          timings=timings, metrics=metrics, objective=objective, message=message))
-        return version
+        def apply(con):
+            version = _next_version(con)
+            _insert(con, _row(version, "failed", params=params, fingerprint=fingerprint, counts=counts,
+                              timings=timings, metrics=metrics, objective=objective, message=message,
+                              run_id=run_id))
+            return version
 
-    return _update_catalog(store, apply)
+        return _update_catalog(store, apply)
 
 
 def _check_version(con, store, version: int, *, complete=True) -> None:
@@ -482,20 +695,23 @@ def _check_version(con, store, version: int, *, complete=True) -> None:
         raise StoreError(f"{store}: version {version} is {rows[0][0]}, not a complete version")
 
 
-def promote_version(store, version: int) -> None:
-    """Make an older complete (kept) version current again."""
+def promote_version(store, version: int, *, wait: float = 0.0) -> None:
+    """Make an older complete (kept) version current again.
+
+    Holds the writer lock, waiting up to ``wait`` seconds for another writer (a refresh) to finish."""
     store = Path(store)
-    _open_catalog(store).close()
+    _open_catalog(store).close()  # a store that is not there is not created by taking its lock
 
     def apply(con):
         _check_version(con, store, version)
         con.execute("update versions set is_current = (version = $v)", {"v": int(version)})
 
-    _update_catalog(store, apply)
+    with store_lock(store, wait=wait, purpose="promote"):
+        _update_catalog(store, apply)
 
 
-def pin_version(store, version: int, pinned: bool = True) -> None:
-    """Pin a version (retention never deletes it) or unpin it."""
+def pin_version(store, version: int, pinned: bool = True, *, wait: float = 0.0) -> None:
+    """Pin a version (retention never deletes it) or unpin it; holds the writer lock like :func:`promote_version`."""
     store = Path(store)
     _open_catalog(store).close()
 
@@ -503,45 +719,25 @@ def pin_version(store, version: int, pinned: bool = True) -> None:
         _check_version(con, store, version, complete=False)
         con.execute("update versions set pinned = $p where version = $v", {"p": bool(pinned), "v": int(version)})
 
-    _update_catalog(store, apply)
+    with store_lock(store, wait=wait, purpose="pin"):
+        _update_catalog(store, apply)
 
 
-def apply_retention(store, keep: int) -> list[int]:
+def apply_retention(store, keep: int, *, wait: float = 0.0) -> list[int]:
     """Keep the ``keep`` newest complete versions plus the current and pinned ones; mark the others ``expired``.
 
+    A publish applies the same rule inside its own catalog switch (``keep=``); this is the rule on its own.
     Their files are deleted only after the new catalog, which no longer points at them, is in place. Returns
     the expired version numbers.
     """
-    if int(keep) < 1:
-        raise StoreError(f"[store] keep must be >= 1, got {keep}")
+    _check_keep(keep)
     store = Path(store)
-
-    def apply(con):
-        rows = con.execute("select version, path, is_current, pinned from versions where status = 'complete' "
-                           "order by version desc").fetchall()
-        drop = [(v, p) for i, (v, p, cur, pin) in enumerate(rows) if i >= keep and not cur and not pin]
-        for v, _ in drop:
-            con.execute("update versions set status = 'expired' where version = $v", {"v": v})
-        return drop
-
-    drop = _update_catalog(store, apply)
-    for v, rel_path in drop:
-        shutil.rmtree(store / _version_dir(v), ignore_errors=True)
-    return [v for v, _ in drop]
-
-
-def save_diagnostics(store, version: int, *, degrees, visit_counts=None, labels=None) -> Path:
-    """Per-node figures the report draws later (degree, walk visits, first label), next to a version's table."""
-    path = Path(store) / _version_dir(version) / "diagnostics.npz"
-    arrays = {"degrees": np.asarray(degrees, np.int64)}
-    if visit_counts is not None:
-        arrays["visit_counts"] = np.asarray(visit_counts, np.int64)
-    if labels is not None:
-        arrays["labels"] = np.array(["" if x is None else str(x) for x in labels])
-    tmp = path.with_name(f".diagnostics-{os.getpid()}.npz")
-    np.savez_compressed(tmp, **arrays)
-    os.replace(tmp, path)
-    return path
+    _open_catalog(store).close()
+    with store_lock(store, wait=wait, purpose="retention"):
+        drop = _update_catalog(store, lambda con: _expire(con, int(keep)))
+        for v in drop:
+            shutil.rmtree(store / _version_dir(v), ignore_errors=True)
+    return drop
 
 
 def load_diagnostics(store, version: int) -> dict[str, np.ndarray]:

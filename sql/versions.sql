@@ -18,5 +18,6 @@ create table if not exists versions (
     timings json,                     -- seconds per stage
     metrics json,
     package_version varchar,
-    message varchar
+    message varchar,
+    run_id varchar                    -- the run that wrote the row: a retry of that run recognises it
 )

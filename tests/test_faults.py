@@ -150,7 +150,7 @@ def test_bad_tables_exit_2_and_change_nothing(published, kind):
 def test_killed_run_leaves_store_whole_and_next_run_publishes(published, stage):
     cfg = published / "ok.toml"
     before_versions = [(v["version"], v["is_current"]) for v in list_versions(published / "store")]
-    r = run_plain_refresh(cfg, env={"GRAPHKIT_FAULT": stage})
+    r = run_plain_refresh(cfg, env={"GRAPHKIT_FAULT": stage, "GRAPHKIT_TEST_FAULTS": "1"})
     assert r.returncode == -9, r.stderr  # killed by SIGKILL
     # readers see exactly the versions that were there
     assert [(v["version"], v["is_current"]) for v in list_versions(published / "store")] == before_versions
@@ -297,7 +297,7 @@ def test_cli_run_never_leaves_its_temporary_prefect_server(published, tmp_path, 
 
     env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
     if fault:
-        env["GRAPHKIT_FAULT"] = fault
+        env.update(GRAPHKIT_FAULT=fault, GRAPHKIT_TEST_FAULTS="1")
     cfg = published / "ok.toml"
     proc = subprocess.Popen([sys.executable, "-m", "graphkit.cli", "refresh", str(cfg), "--set",
                              f'store.path="{tmp_path / "store"}"'], cwd=ROOT, env=env,

@@ -187,7 +187,7 @@ def _cli_refresh(store, api_url, fault=None):
     env = {**os.environ, "PREFECT_API_URL": api_url, "PYTHONUNBUFFERED": "1"}
     env.pop("GRAPHKIT_FAULT", None)
     if fault:
-        env["GRAPHKIT_FAULT"] = fault
+        env.update(GRAPHKIT_FAULT=fault, GRAPHKIT_TEST_FAULTS="1")
     return subprocess.run([sys.executable, "-m", "graphkit.cli", "refresh", str(DEMO), "--set",
                            f'store.path="{store}"', *[a for o in FAST for a in ("--set", o)]],
                           capture_output=True, text=True, timeout=300, env=env, cwd=ROOT)
