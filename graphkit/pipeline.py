@@ -269,15 +269,21 @@ def stage_evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict
 def run_id_of(plan: dict, train: dict) -> str:
     """The id a run records in its version row, the same for every attempt of its publish.
 
-    ``plan["run_id"]`` when the plan carries one; otherwise derived from the plan and the training result the
-    vectors come from (its marker's figures and the vectors file's modification time), so a retry of the publish
+    ``plan["run_id"]`` when the plan carries one; otherwise derived from what the plan says about the input,
+    parameters and stage folders, and from the training result the vectors come from (its marker's figures and the vectors file's modification time), so a retry of the publish
     task, or a rerun that resumes from the same trained vectors, recognises the version they published, while a
     run that trains again gets a new id.
     """
     if plan.get("run_id"):
         return str(plan["run_id"])
+    what = {k: plan.get(k) for k in _RUN_ID_KEYS}  # not the plan's clock readings: a rerun plans anew
     marker = {k: v for k, v in train.items() if k != "skipped"}
-    return digest({"plan": plan, "train": marker, "vectors_mtime_ns": os.stat(train["vectors"]).st_mtime_ns}, 32)
+    return digest({"plan": what, "train": marker, "vectors_mtime_ns": os.stat(train["vectors"]).st_mtime_ns}, 32)
+
+
+#: The plan entries that say which vectors a run publishes: the store, the input, the parameters, the stage folders.
+_RUN_ID_KEYS = ("store", "fingerprint", "params", "ingest_dir", "graph_dir", "walks_dir", "train_dir", "holdout_dir",
+                "eval_walks_dir", "eval_train_dir")
 
 
 def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, walks: dict, train: dict,
