@@ -9,10 +9,11 @@ Layout of a store folder::
     versions/000001/embeddings.duckdb   the same rows as a native DuckDB table, attached by `connect` for fast SQL
     work/                               scratch of runs in progress (ingest, graph, walk corpus)
 
-A version becomes visible only when complete. Its Parquet file is written under a temporary name and renamed
-into place; the catalog is then rebuilt in a copy, in one transaction, and the copy renamed over the old catalog.
-Readers that opened the old catalog keep seeing the old version whole; readers that open after the rename see the
-new one whole.
+A version becomes visible only when complete. Everything of it is written in a temporary folder renamed into
+place; the catalog is then rebuilt in a copy, in one transaction (new row, current version, retention), and the
+copy renamed over the old catalog; each rename is followed by an fsync of its folder. Readers that opened the old
+catalog keep seeing the old version whole; readers that open after the rename see the new one whole. Every
+catalog writer holds the writer lock (:func:`store_lock`), and a publish is idempotent per run id.
 """
 
 from __future__ import annotations
