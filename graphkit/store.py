@@ -73,6 +73,9 @@ _HOLDER_SETTLE_SECONDS = 1.0
 # child, whose pid differs, does not inherit the ownership.
 _HELD: dict[str, list] = {}
 _HELD_GUARD = threading.Lock()
+# Catalog writers of one process take turns too (the flock cannot tell its threads apart): a promote in a notebook
+# thread while a refresh publishes in another, say.
+_WRITERS = threading.RLock()
 
 
 def _pid_alive(pid: int) -> bool:
@@ -164,6 +167,7 @@ def store_lock(store, *, wait: float = 0.0, purpose: str = "refresh"):
     except OSError as exc:  # ELOOP: a symlink planted where the lock belongs is never followed
         raise StoreError(f"{path}: cannot open the store lock ({exc.strerror}); a symlink there is refused") from None
     key = str(store.resolve())
+    old_mask = os.umask(0o022)  # nothing in the store is group- or world-writable, whatever the caller's umask
     try:
         _take_flock(fd, store, float(wait))
         os.ftruncate(fd, 0)
@@ -181,6 +185,7 @@ def store_lock(store, *, wait: float = 0.0, purpose: str = "refresh"):
             os.ftruncate(fd, 0)  # a released lock names nobody, so a later refusal cannot name a stale pid
     finally:
         os.close(fd)  # closing releases the flock; a killed owner's lock vanishes with its process
+        os.umask(old_mask)
 
 
 def check_store_writable(store) -> None:
@@ -634,7 +639,7 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
     if keep is not None:
         _check_keep(keep)
     run_id = str(run_id) if run_id else uuid.uuid4().hex
-    with store_lock(store, purpose="publish"):
+    with store_lock(store, purpose="publish"), _WRITERS:
         known = version_of_run(store, run_id)
         if known is not None and known[1] != "failed":
             _sweep_versions(store)  # an attempt killed or failed after the switch may have left expired folders
@@ -673,7 +678,7 @@ def record_failed_run(store, *, message: str, params: dict, fingerprint: list, c
     Holds the writer lock; a retry of the same ``run_id`` gets the version already recorded."""
     store = Path(store)
     run_id = str(run_id) if run_id else uuid.uuid4().hex
-    with store_lock(store, purpose="refresh"):
+    with store_lock(store, purpose="refresh"), _WRITERS:
         known = version_of_run(store, run_id)
         if known is not None:
             return known[0]
@@ -707,7 +712,7 @@ def promote_version(store, version: int, *, wait: float = 0.0) -> None:
         _check_version(con, store, version)
         con.execute("update versions set is_current = (version = $v)", {"v": int(version)})
 
-    with store_lock(store, wait=wait, purpose="promote"):
+    with store_lock(store, wait=wait, purpose="promote"), _WRITERS:
         _update_catalog(store, apply)
 
 
@@ -720,7 +725,7 @@ def pin_version(store, version: int, pinned: bool = True, *, wait: float = 0.0) 
         _check_version(con, store, version, complete=False)
         con.execute("update versions set pinned = $p where version = $v", {"p": bool(pinned), "v": int(version)})
 
-    with store_lock(store, wait=wait, purpose="pin"):
+    with store_lock(store, wait=wait, purpose="pin"), _WRITERS:
         _update_catalog(store, apply)
 
 
@@ -734,7 +739,7 @@ def apply_retention(store, keep: int, *, wait: float = 0.0) -> list[int]:
     _check_keep(keep)
     store = Path(store)
     _open_catalog(store).close()
-    with store_lock(store, wait=wait, purpose="retention"):
+    with store_lock(store, wait=wait, purpose="retention"), _WRITERS:
         drop = _update_catalog(store, lambda con: _expire(con, int(keep)))
         for v in drop:
             shutil.rmtree(store / _version_dir(v), ignore_errors=True)

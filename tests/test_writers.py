@@ -421,3 +421,49 @@ def test_fault_point_needs_the_test_switch(tmp_path):
     r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True,
                        env={**env, "GRAPHKIT_FAULT": "publish", "GRAPHKIT_TEST_FAULTS": "1"})
     assert r.returncode == -9
+
+
+def test_writers_in_threads_of_one_process_take_turns(tmp_path):
+    """The flock cannot tell threads apart: publishes and promotes from several threads of one process must not
+    lose each other's catalog changes."""
+    _publish(tmp_path)
+    errors = []
+
+    def publish_some(k):
+        try:
+            for j in range(3):
+                _publish(tmp_path, value=float(10 * k + j))
+        except Exception as exc:  # noqa: BLE001 - reported below
+            errors.append(exc)
+
+    def promote_some():
+        try:
+            for _ in range(5):
+                promote_version(tmp_path, 1)
+        except Exception as exc:  # noqa: BLE001
+            errors.append(exc)
+
+    threads = [threading.Thread(target=publish_some, args=(k,)) for k in range(2)] + [threading.Thread(
+        target=promote_some)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=120)
+    assert errors == []
+    rows = assert_consistent(tmp_path)
+    assert [r["version"] for r in rows] == list(range(1, 8))  # every publish is in the catalog
+    values = sorted(float(read[0, 0]) for read in (graphkit.store.read_version(tmp_path, v)[1] for v in range(2, 8)))
+    assert values == [0.0, 1.0, 2.0, 10.0, 11.0, 12.0]
+
+
+def test_standalone_writers_create_nothing_group_or_world_writable(tmp_path):
+    old = os.umask(0)
+    try:
+        _publish(tmp_path)
+        _publish(tmp_path, value=2.0)
+        promote_version(tmp_path, 1)
+        pin_version(tmp_path, 2)
+    finally:
+        os.umask(old)
+    for p in [tmp_path, *tmp_path.rglob("*")]:
+        assert not p.stat().st_mode & 0o022, f"{p} is group/world writable: {oct(p.stat().st_mode)}"
