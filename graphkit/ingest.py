@@ -231,23 +231,52 @@ def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: st
     rel.create_view("raw_edges")
 
 
+def _examples(con, check: str) -> list[tuple]:
+    """Up to 5 offending rows of ``sql/<check>.sql`` (table path first); [] when they cannot be read, so that
+    building an error message never fails itself."""
+    try:
+        return [tuple(r) for r in con.sql(load_sql(check)).fetchall()]
+    except Exception:  # noqa: BLE001 - the count already says what is wrong; the examples are a courtesy
+        return []
+
+
+def _format_rows(rows, limit: int = 300) -> str:
+    """Example rows (without their table path) as one short line of reprs; never raises."""
+    try:
+        text = "[" + ", ".join("(" + ", ".join(_safe_repr(v) for v in r[1:]) + ")" for r in rows) + "]"
+    except Exception:  # noqa: BLE001
+        return "[rows that cannot be shown]"
+    text = " ".join(text.split())
+    return text if len(text) <= limit else text[:limit] + "...]"
+
+
+def _safe_repr(value) -> str:
+    try:
+        return repr(value)
+    except Exception:  # noqa: BLE001
+        return f"<{type(value).__name__}>"
+
+
 def _check_rows(con, tables: list[EdgeTable], drop_null_ids: bool, where: str) -> tuple[int, int, int, int]:
     """Count the rows of ``windowed`` by what ingest does with them; raise on rows it cannot use."""
     counts = _run(con, "checks/edge_counts", {}).fetchall()[0]
     n_rows, n_outside, n_null_src, n_null_dst, n_null, n_loops, n_bad_w = (int(c) for c in counts)
     by_path = {t.path: t for t in tables}
     if n_null and not drop_null_ids:
-        path, src, _ = con.sql(load_sql("checks/null_ids")).fetchall()[0]
-        t = by_path[path]
-        col = t.source if src is None else t.target
+        ex = _examples(con, "checks/null_ids")
+        path = ex[0][0] if ex else where
+        t = by_path.get(path)
+        col = "" if t is None else f", e.g. in column {t.source if ex[0][1] is None else t.target!r}"
         raise EdgeTableError(f"{path}: {n_null} of {n_rows} rows have a null id ({n_null_src} in the source, "
-                             f"{n_null_dst} in the target column), e.g. in column {col!r}; set [input] "
-                             f"drop_null_ids = true to drop them")
+                             f"{n_null_dst} in the target column){col}; set [input] drop_null_ids = true to drop them")
     if n_bad_w:
-        ex = con.sql(load_sql("checks/bad_weights")).fetchall()
-        raise EdgeTableError(f"{ex[0][0]}: {n_bad_w} of {n_rows} rows have a null, NaN, infinite, zero or negative "
-                             f"value in weight column {by_path[ex[0][0]].weight!r}, e.g. "
-                             f"{[tuple(r[1:]) for r in ex]}")
+        ex = _examples(con, "checks/bad_weights")
+        path = ex[0][0] if ex else where
+        t = by_path.get(path)
+        column = "the weight column" if t is None else f"weight column {t.weight!r}"
+        raise EdgeTableError(f"{path}: {n_bad_w} of {n_rows} rows have a null, NaN, infinite, zero or negative "
+                             f"value in {column} (as float32: above 3.4e38 is infinite, below 1.4e-45 zero)"
+                             + (f", e.g. {_format_rows(ex)}" if ex else ""))
     if n_rows - n_outside - n_null - n_loops <= 0:
         raise EdgeTableError(f"{where}: no usable edge ({n_rows} rows: {n_outside} outside the time window, "
                              f"{n_null} with a null id, {n_loops} self-loops); every node would be isolated")
