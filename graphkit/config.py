@@ -75,6 +75,13 @@ class InputSection(_Section):
                     raise ValueError(f"missing key {key!r} (or give [[input.tables]])")
         if self.since is not None and self.last_days is not None:
             raise ValueError("give either since or last_days, not both")
+        kinds = [k for k in ("source_kind", "target_kind") if k in self.model_fields_set]
+        if self.tables and kinds:
+            raise CrossKeyError(f"[input] {kinds[0]} is for the single-table keys; with [[input.tables]] give "
+                                f"{kinds[0]} in each entry", ("input", kinds[0]), ("input", "tables"))
+        if self.since is not None and self.until is not None and _utc(self.since) >= _utc(self.until):
+            raise CrossKeyError(f"[input] since ({self.since}) must be before [input] until ({self.until}): the "
+                                "window is empty", ("input", "since"), ("input", "until"))
         timed = [k for k in ("since", "until", "last_days", "half_life_days") if getattr(self, k) is not None]
         if timed and not any(t.timestamp for t in self.table_specs()):
             raise CrossKeyError(f"[input] {timed[0]} needs a timestamp column, but no edge table names one (give "

@@ -116,6 +116,13 @@ BAD_SETS = {
     "window_without_timestamp": (["input.last_days=3"], r"--set input.last_days: \[input\] last_days needs a "
                                                         r"timestamp column"),
     "decay_without_timestamp": (["input.half_life_days=3"], r"\[input\] half_life_days needs a timestamp"),
+    "since_after_until": (['input.timestamp="sent_at"', "input.since=2026-12-01", "input.until=2026-11-01"],
+                          r"--set input.since: \[input\] since \(2026-12-01\) must be before \[input\] until"),
+    "window_outside_the_data": (['input.timestamp="sent_at"', "input.since=2000-01-01", "input.until=2000-02-01"],
+                                r"transfers\.parquet: no usable edge \(\d+ rows: \d+ outside the time window"),
+    "decay_below_float32": (['input.timestamp="sent_at"', "input.half_life_days=0.01"],
+                            r"transfers\.parquet: \d+ of \d+ rows are so old that their weight, halved every "
+                            r"\[input\] half_life_days = 0.01 days, falls below the smallest float32"),
     # keys, types, inputs
     "unknown_key": (["train.dimm=3"], r"unknown key \[train\] dimm \(did you mean 'dim'\?\)"),
     "wrong_type": (['train.dim="x"'], r"--set train.dim: \[train\] dim: input should be a valid integer"),
