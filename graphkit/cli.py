@@ -91,21 +91,78 @@ def cmd_versions(args) -> int:
     return 0
 
 
+#: Output formats of ``export`` and ``features`` by the file's extension.
+OUT_FORMATS = {".parquet": "parquet", ".csv": "csv"}
+
+
+def output_file(out, *, formats=OUT_FORMATS, store=None, option: str = "--out") -> tuple[Path, str]:
+    """Check an output file before any work: a known extension (its format is returned), not a folder, not inside
+    the store, and a parent folder that exists or can be created (missing folders are created when the file is
+    written, see :func:`make_parent`). Raises ``InputError``."""
+    out = Path(out)
+    fmt = formats.get(out.suffix.lower())
+    if fmt is None:
+        known = ", ".join(formats)
+        raise InputError(f"{option} {out}: unknown file extension {out.suffix or '(none)'!r}; use one of {known}")
+    if out.is_dir():
+        raise InputError(f"{option} {out}: is a folder; give a file name")
+    if store is not None:
+        root, target = Path(store).resolve(), out.resolve()
+        if target == root or root in target.parents:
+            raise InputError(f"{option} {out}: inside the store {store}; write exports elsewhere")
+    probe = out.absolute().parent
+    while not probe.exists() and not probe.is_symlink():
+        probe = probe.parent
+    if not probe.is_dir():
+        raise InputError(f"{option} {out}: cannot create the folder {out.parent}: {probe} is a file")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise InputError(f"{option} {out}: the folder {probe} is not writable")
+    return out, fmt
+
+
+def make_parent(out: Path, option: str = "--out") -> None:
+    """Create the missing folders above an output file checked by :func:`output_file`."""
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{option} {out}: cannot create the folder {out.parent} ({exc.strerror or exc})") from None
+
+
+def spread_vectors(table, prefix: str = "emb_"):
+    """``table`` with its fixed-size ``vector`` column replaced by float32 columns ``emb_000 …`` (for CSV)."""
+    import pyarrow as pa
+
+    vec = table.column("vector").combine_chunks()
+    dim = vec.type.list_size
+    flat = vec.flatten().to_numpy(zero_copy_only=False).reshape(-1, dim)
+    out = table.drop_columns(["vector"])
+    for i in range(dim):
+        out = out.append_column(f"{prefix}{i:03d}", pa.array(flat[:, i]))
+    return out
+
+
 def cmd_export(args) -> int:
+    import pyarrow.csv as pcsv
     import pyarrow.parquet as pq
 
     from .store import connect
 
     con = connect(args.store, version=args.version)
     try:
+        out, fmt = output_file(args.out, store=args.store)
         table = con.sql("select node_id, node_kind, vector from embeddings").to_arrow_table()
     finally:
         con.close()
-    out = Path(args.out)
-    out.parent.mkdir(parents=True, exist_ok=True)
+    make_parent(out)
     tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    pq.write_table(table, tmp, compression="zstd")
-    os.replace(tmp, out)
+    try:
+        if fmt == "csv":  # one numeric column per dimension: what spreadsheets, pandas and SQL loaders read
+            pcsv.write_csv(spread_vectors(table), tmp)
+        else:
+            pq.write_table(table, tmp, compression="zstd")
+        os.replace(tmp, out)
+    finally:
+        tmp.unlink(missing_ok=True)
     print(f"wrote {table.num_rows} rows to {out}")
     return 0
 
@@ -162,7 +219,10 @@ def cmd_report(args) -> int:
         _, vectors = read_version(args.store)
         diag = load_diagnostics(args.store, current["version"])
     labels = diag.get("labels")
-    out = Path(args.out) if args.out else Path(args.store) / "reports" / "report.html"
+    if args.out:
+        out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
+    else:
+        out = Path(args.store) / "reports" / "report.html"
     write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
                  vectors=vectors, labels=None if labels is None else [x or None for x in labels.tolist()],
                  title=f"graphkit store {Path(args.store).resolve().name}"
@@ -193,6 +253,11 @@ def cmd_foldin(args) -> int:
 
     cfg = load_config(args.config, args.set)
     result = fold_in(cfg)
+    if result["version"] is None:
+        what = ("no new nodes" if result["foldin_candidates"] == 0 else
+                f"{result['foldin_candidates']} new nodes, none with a known neighbour,")
+        print(f"{what} since version {result['base_version']}: nothing published")
+        return 0
     print(f"published version {result['version']}: version {result['base_version']} plus "
           f"{result['foldin_nodes']} provisional vectors ({result['foldin_without_known_neighbours']} new nodes "
           f"had no known neighbour)")
@@ -202,7 +267,12 @@ def cmd_foldin(args) -> int:
 def cmd_features(args) -> int:
     from .features import export_features
 
-    fmt = "csv" if args.csv or str(args.out).lower().endswith(".csv") else "parquet"
+    from .store import _version_row
+
+    _version_row(Path(args.store), args.version)  # a missing store or version first, before the output's checks
+    out, fmt = output_file(args.out, store=args.store)
+    if args.csv and fmt != "csv":
+        raise InputError(f"--csv writes CSV, but --out {args.out} names a {fmt} file; name it .csv")
     r = export_features(args.store, args.entities, args.on, args.out, version=args.version, kind=args.kind,
                         fmt=fmt)
     print(f"wrote {r['rows']} rows to {args.out} (version {r['version']}, {r['dim']} columns); "
@@ -304,7 +374,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     e = sub.add_parser("export", help="write a version's vectors to a Parquet file")
     e.add_argument("store")
-    e.add_argument("--out", required=True, help="output Parquet file")
+    e.add_argument("--out", required=True, help="output file: .parquet (a vector column) or .csv (one column per "
+                                                 "dimension)")
     e.add_argument("--version", type=int, default=None, help="version number (default: current)")
     e.set_defaults(func=cmd_export)
 
@@ -344,12 +415,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     fe = sub.add_parser("features", help="join vectors onto an entity table as numbered float columns")
     fe.add_argument("store")
-    fe.add_argument("--entities", required=True, help="entity table (Parquet)")
+    fe.add_argument("--entities", required=True, help="entity table (Parquet file, folder or glob, or a CSV file)")
     fe.add_argument("--on", required=True, help="entity column holding the node id")
-    fe.add_argument("--out", required=True, help="output file (.parquet, or .csv)")
+    fe.add_argument("--out", required=True, help="output file (.parquet or .csv)")
     fe.add_argument("--version", type=int, default=None)
     fe.add_argument("--kind", default=None, help="node kind to match (required when there are several)")
-    fe.add_argument("--csv", action="store_true", help="write CSV instead of Parquet")
+    fe.add_argument("--csv", action="store_true", help="write CSV (--out must then end in .csv)")
     fe.set_defaults(func=cmd_features)
 
     q = sub.add_parser("sql", help="run a DuckDB query over the store (views embeddings, versions)")

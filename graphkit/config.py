@@ -14,9 +14,19 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from . import checks as _b
 from .errors import ConfigError
 
-__all__ = ["RefreshConfig", "load_config", "apply_overrides"]
+__all__ = ["RefreshConfig", "CrossKeyError", "load_config", "apply_overrides"]
+
+
+class CrossKeyError(ValueError):
+    """A rule between keys that each hold a valid value (a validator's error); ``keys`` are the
+    ``(section, key)`` pairs involved, so that the message can blame ``--set`` when one of them came from there."""
+
+    def __init__(self, message: str, *keys: tuple[str, str]):
+        super().__init__(message)
+        self.keys = keys
 
 
 class _Section(BaseModel):
@@ -65,6 +75,18 @@ class InputSection(_Section):
                     raise ValueError(f"missing key {key!r} (or give [[input.tables]])")
         if self.since is not None and self.last_days is not None:
             raise ValueError("give either since or last_days, not both")
+        kinds = [k for k in ("source_kind", "target_kind") if k in self.model_fields_set]
+        if self.tables and kinds:
+            raise CrossKeyError(f"[input] {kinds[0]} is for the single-table keys; with [[input.tables]] give "
+                                f"{kinds[0]} in each entry", ("input", kinds[0]), ("input", "tables"))
+        if self.since is not None and self.until is not None and _utc(self.since) >= _utc(self.until):
+            raise CrossKeyError(f"[input] since ({self.since}) must be before [input] until ({self.until}): the "
+                                "window is empty", ("input", "since"), ("input", "until"))
+        timed = [k for k in ("since", "until", "last_days", "half_life_days") if getattr(self, k) is not None]
+        if timed and not any(t.timestamp for t in self.table_specs()):
+            raise CrossKeyError(f"[input] {timed[0]} needs a timestamp column, but no edge table names one (give "
+                                "[input] timestamp, or timestamp in an [[input.tables]] entry)",
+                                ("input", timed[0]), ("input", "timestamp"))
         return self
 
     def table_specs(self) -> list[TableSection]:
@@ -93,32 +115,57 @@ def _utc(value):
 
 
 class WalksSection(_Section):
-    per_node: int = Field(default=10, ge=1, description="Walks started from every node (one pass each).")
-    length: int = Field(default=40, ge=2, description="Nodes per walk, the start node included.")
-    seed: int = Field(default=0, ge=0, description="Seed of the walk and training random streams.")
+    per_node: int = Field(default=10, ge=_b.PER_NODE_MIN, description="Walks started from every node (one pass "
+                                                                      "each).")
+    length: int = Field(default=40, ge=_b.LENGTH_MIN, description="Nodes per walk, the start node included.")
+    seed: int = Field(default=0, ge=0, le=_b.SEED_MAX, description="Seed of the walk and training random streams.")
     weighted: bool = Field(default=True, description="Draw the next node proportionally to edge weight when the "
                                                      "graph has weights (false: uniform).")
-    p: float = Field(default=1.0, gt=0, description="node2vec return parameter (1 with q = 1: first-order walks).")
-    q: float = Field(default=1.0, gt=0, description="node2vec in-out parameter.")
+    p: float = Field(default=1.0, ge=_b.P_Q_RANGE[0], le=_b.P_Q_RANGE[1],
+                     description="node2vec return parameter (1 with q = 1: first-order walks).")
+    q: float = Field(default=1.0, ge=_b.P_Q_RANGE[0], le=_b.P_Q_RANGE[1], description="node2vec in-out parameter.")
     dead_end: Literal["stop", "restart"] = Field(
         default="stop", description="Directed graphs: at a node with no out-edges stop the walk, or restart it at "
                                     "its first node.")
 
 
 class TrainSection(_Section):
-    dim: int = Field(default=128, ge=1, le=4096, description="Dimension of the node vectors.")
-    window: int = Field(default=5, ge=1, description="Largest distance between a node and its context in a walk.")
+    dim: int = Field(default=128, ge=_b.DIM_RANGE[0], le=_b.DIM_RANGE[1], description="Dimension of the node "
+                                                                                      "vectors.")
+    window: int = Field(default=5, ge=_b.WINDOW_MIN, description="Largest distance between a node and its context "
+                                                                 "in a walk.")
     objective: Literal["negative_sampling", "hierarchical_softmax"] = "negative_sampling"
-    negatives: int = Field(default=5, ge=1, description="Negative samples per positive pair (negative_sampling).")
-    epochs: int = Field(default=1, ge=1, description="Passes over the walk corpus.")
-    learning_rate: float = Field(default=0.025, gt=0, le=1.0, description="Starting learning rate, decayed linearly.")
-    threads: int | None = Field(default=None, ge=1, description="Training threads (default: all cores).")
-    subsample: float = Field(default=0.0, ge=0, le=1, description="Subsampling threshold of frequent nodes "
-                                                                  "(Mikolov et al. 2013); 0 keeps every visit.")
+    negatives: int = Field(default=5, ge=_b.NEGATIVES_MIN, description="Negative samples per positive pair "
+                                                                       "(negative_sampling only).")
+    epochs: int = Field(default=1, ge=_b.EPOCHS_MIN, description="Passes over the walk corpus.")
+    learning_rate: float = Field(default=0.025, ge=_b.MIN_LEARNING_RATE, le=_b.LEARNING_RATE_MAX,
+                                 description="Starting learning rate, decayed linearly to "
+                                             f"{_b.MIN_LEARNING_RATE}.")
+    threads: int | None = Field(default=None, ge=_b.THREADS_MIN, description="Training threads (default: all "
+                                                                             "cores; at most numba's thread pool).")
+    subsample: float = Field(default=0.0, ge=_b.SUBSAMPLE_RANGE[0], le=_b.SUBSAMPLE_RANGE[1],
+                             description="Subsampling threshold of frequent nodes (Mikolov et al. 2013); 0 keeps "
+                                         "every visit.")
     warm_start: bool = Field(default=False, description="Start the vectors of nodes present in the current "
                                                         "version from it (new nodes start random).")
     memmap: bool = Field(default=False, description="Back the weight matrices by np.memmap files in the work "
                                                     "folder, for graphs whose matrices do not fit in memory.")
+
+    @field_validator("threads")
+    @classmethod
+    def _threads_within_the_pool(cls, threads):
+        if threads is not None and threads > _b.max_threads():
+            raise ValueError(f"at most {_b.max_threads()} threads here (numba's thread pool, NUMBA_NUM_THREADS), "
+                             f"got {threads}")
+        return threads
+
+    @model_validator(mode="after")
+    def _negatives_only_with_negative_sampling(self):
+        if self.objective == "hierarchical_softmax" and "negatives" in self.model_fields_set:
+            raise CrossKeyError("[train] negatives applies to objective = \"negative_sampling\" only, but "
+                                "[train] objective is \"hierarchical_softmax\"; remove one of them",
+                                ("train", "negatives"), ("train", "objective"))
+        return self
 
 
 class StoreSection(_Section):
@@ -143,7 +190,8 @@ class EvaluateSection(_Section):
     repeats: int = Field(default=3, ge=1, description="Random splits per training share.")
     max_labelled_nodes: int = Field(default=20_000, ge=2, description="Labelled nodes sampled for the evaluation.")
     drift_sample: int = Field(default=2000, ge=10, description="Query nodes for the neighbour-overlap drift.")
-    seed: int = Field(default=0, ge=0, description="Seed of the holdout and of the evaluation splits.")
+    seed: int = Field(default=0, ge=0, le=_b.SEED_MAX, description="Seed of the holdout and of the evaluation "
+                                                                   "splits.")
 
     @field_validator("ratios")
     @classmethod
@@ -154,6 +202,17 @@ class EvaluateSection(_Section):
         if bad:
             raise ValueError(f"training shares must be between 0 and 1 (exclusive), got {bad[0]}")
         return ratios
+
+    @model_validator(mode="after")
+    def _options_need_their_table(self):
+        if self.publish_holdout_model and self.link_holdout == 0:
+            raise CrossKeyError("[evaluate] publish_holdout_model = true needs held-out edges, but [evaluate] "
+                                "link_holdout = 0", ("evaluate", "publish_holdout_model"),
+                                ("evaluate", "link_holdout"))
+        if self.labels is None and self.label_kind is not None:
+            raise CrossKeyError("[evaluate] label_kind is set but there is no [evaluate] labels table",
+                                ("evaluate", "label_kind"), ("evaluate", "labels"))
+        return self
 
 
 class GatesSection(_Section):
@@ -172,6 +231,14 @@ class DaskSection(_Section):
     address: str | None = Field(default=None, description="Scheduler address of an existing Dask cluster.")
     workers: int | None = Field(default=None, ge=1, description="Threads of the local cluster (default: cores).")
 
+    @model_validator(mode="after")
+    def _workers_only_for_the_local_cluster(self):
+        if self.address is not None and self.workers is not None:
+            raise CrossKeyError("[dask] workers sizes the local cluster and cannot be combined with [dask] address "
+                                "(the cluster there is sized by whoever started it); remove one of them",
+                                ("dask", "workers"), ("dask", "address"))
+        return self
+
 
 class RefreshConfig(_Section):
     """The whole resolved configuration; ``base_dir`` is the folder relative paths are resolved against."""
@@ -185,6 +252,21 @@ class RefreshConfig(_Section):
     gates: GatesSection = GatesSection()
     base_dir: str = "."
     source_file: str = "<config>"
+
+    @model_validator(mode="after")
+    def _gates_need_their_measure(self):
+        g, ev = self.gates, self.evaluate
+        if g.min_link_auc is not None and ev.link_holdout == 0:
+            raise CrossKeyError("[gates] min_link_auc needs held-out edges to measure the link AUC, but [evaluate] "
+                                "link_holdout = 0", ("gates", "min_link_auc"), ("evaluate", "link_holdout"))
+        for key in ("min_micro_f1", "min_macro_f1"):
+            if getattr(g, key) is not None and ev.labels is None:
+                raise CrossKeyError(f"[gates] {key} needs node labels, but there is no [evaluate] labels table",
+                                    ("gates", key), ("evaluate", "labels"))
+        if g.max_align_residual is not None and not self.store.align:
+            raise CrossKeyError("[gates] max_align_residual needs the alignment, but [store] align = false",
+                                ("gates", "max_align_residual"), ("store", "align"))
+        return self
 
     @property
     def edges_path(self) -> str:
@@ -269,7 +351,34 @@ def _check_keys(data: dict, where: str) -> None:
 
 
 def _format_error(exc: ValidationError, where: str, overridden=frozenset()) -> str:
+    """One line naming the key; it never fails itself (a bad value's repr included)."""
+    try:
+        return _format_first_error(exc, where, overridden)
+    except Exception:  # noqa: BLE001 - an error message must not raise a second error
+        try:
+            first = str(exc).splitlines()
+            return f"{where}: invalid configuration ({first[1].strip() if len(first) > 1 else first[0]})"
+        except Exception:  # noqa: BLE001
+            return f"{where}: invalid configuration"
+
+
+def _repr(value, limit: int = 200) -> str:
+    try:
+        text = repr(value)
+    except Exception:  # noqa: BLE001
+        text = f"<{type(value).__name__}>"
+    text = " ".join(text.split())
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
+def _format_first_error(exc: ValidationError, where: str, overridden) -> str:
     err = exc.errors()[0]
+    cross = (err.get("ctx") or {}).get("error")
+    if isinstance(cross, CrossKeyError):  # a rule between keys: blame --set when one of them came from there
+        from_set = [k for k in cross.keys if k in overridden]
+        if from_set:
+            where = f"--set {from_set[0][0]}.{from_set[0][1]}"
+        return f"{where}: {cross}"
     loc = [str(p) for p in err["loc"]]
     if len(loc) > 2 and loc[1] != "tables":  # a member of a union type (since.date, since.datetime): the key
         loc = loc[:2]
@@ -289,8 +398,8 @@ def _format_error(exc: ValidationError, where: str, overridden=frozenset()) -> s
     if err["type"] == "extra_forbidden":
         return f"{where}: unknown key {name}"
     if err["type"] == "value_error":
-        return f"{where}: {name}: {msg.removeprefix('Value error, ')}"
-    return f"{where}: {name}: {msg[0].lower() + msg[1:]}, got {err.get('input')!r}"
+        return f"{where}: {name}: {' '.join(msg.removeprefix('Value error, ').split())}"
+    return f"{where}: {name}: {msg[0].lower() + msg[1:]}, got {_repr(err.get('input'))}"
 
 
 def config_from_dict(data: dict, *, base_dir: str = ".", where: str = "<config>",

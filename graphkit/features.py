@@ -15,6 +15,36 @@ from .store import _version_files, _version_row
 
 __all__ = ["export_features"]
 
+_CSV_SUFFIXES = (".csv", ".tsv", ".csv.gz", ".tsv.gz")
+
+
+def _first_line(exc) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def _read_entities(con, entities, on: str):
+    """The entity table as a DuckDB relation: Parquet (file, folder or glob) or one CSV file."""
+    name = str(entities)
+    if name.lower().endswith(_CSV_SUFFIXES):
+        if not Path(name).is_file():
+            raise EdgeTableError(f"{entities}: entity table not found")
+        try:
+            ent = con.read_csv(name, header=True)
+            if on in ent.columns:  # ids as written: a sniffed integer type would turn 007 into 7
+                ent = con.read_csv(name, header=True, dtype={on: "VARCHAR"})
+            return ent
+        except duckdb.Error as exc:
+            raise EdgeTableError(f"{entities}: not a readable CSV entity table ({_first_line(exc)})") from None
+    path = Path(name)
+    if not any(ch in name for ch in "*?[") and not path.exists():
+        raise EdgeTableError(f"{entities}: entity table not found")
+    try:
+        return con.read_parquet(str(path / "**" / "*.parquet") if path.is_dir() else name)
+    except duckdb.Error as exc:
+        hint = "; CSV entity tables must end in .csv" if path.is_file() else ""
+        raise EdgeTableError(f"{entities}: not a readable Parquet entity table ({_first_line(exc)}){hint}") from None
+
 
 def export_features(store, entities, on: str, out, *, version: int | None = None, kind: str | None = None,
                     fmt: str = "parquet", prefix: str = "emb_") -> dict[str, Any]:
@@ -26,7 +56,9 @@ def export_features(store, entities, on: str, out, *, version: int | None = None
     ----------
     store : path
     entities : path
-        A Parquet file (or folder/glob) of entities, e.g. the customers a churn model scores.
+        A Parquet file (or folder/glob) of entities, e.g. the customers a churn model scores, or a CSV file with a
+        header row (``.csv``, ``.tsv``, optionally ``.gz``); the ``on`` column of a CSV file is read as text, as
+        written, so that ids such as ``007`` keep their leading zeros.
     on : str
         The entity column holding the node id (compared as text, so int and string ids both match).
     out : path
@@ -50,10 +82,7 @@ def export_features(store, entities, on: str, out, *, version: int | None = None
     out = Path(out)
     con = duckdb.connect()
     try:
-        try:
-            ent = con.read_parquet(str(entities))
-        except duckdb.Error as exc:
-            raise EdgeTableError(f"{entities}: cannot read the entity table ({str(exc).splitlines()[0]})") from None
+        ent = _read_entities(con, entities, on)
         if on not in ent.columns:
             close = difflib.get_close_matches(on, ent.columns, n=1)
             hint = f" (did you mean {close[0]!r}?)" if close else f" (columns: {', '.join(ent.columns)})"
@@ -83,14 +112,20 @@ def export_features(store, entities, on: str, out, *, version: int | None = None
         counts = con.execute(f"with v as (select node_id::varchar as key from vectors {kind_filter}) "
                              f"select count(*), count(v.key) from entities as e "
                              f"left join v on v.key = e.{quote_ident(on)}::varchar", params).fetchall()[0]
-        out.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            out.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StoreError(f"{out}: cannot create the folder {out.parent} ({exc.strerror or exc})") from None
         tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
         rel = con.sql(query, params=params)
-        if fmt == "csv":
-            rel.write_csv(str(tmp))
-        else:
-            rel.write_parquet(str(tmp), compression="zstd")
-        os.replace(tmp, out)
+        try:
+            if fmt == "csv":
+                rel.write_csv(str(tmp))
+            else:
+                rel.write_parquet(str(tmp), compression="zstd")
+            os.replace(tmp, out)
+        finally:
+            tmp.unlink(missing_ok=True)
     finally:
         con.close()
     n_rows, n_with = int(counts[0]), int(counts[1])

@@ -59,6 +59,15 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
     A node's provisional vector is the weighted mean of the vectors of its neighbours that the current version
     has (trained, not provisional ones). Nodes with no such neighbour get none. The next full refresh replaces
     every provisional vector with a trained one.
+
+    When no node gets a provisional vector (no new node, or none with a known neighbour), nothing is published:
+    ``version`` is None and the store is left as it was.
+
+    Returns
+    -------
+    dict
+        ``version`` (the new one, or None), ``base_version``, ``foldin_candidates`` (new nodes found),
+        ``foldin_nodes`` (given a vector) and ``foldin_without_known_neighbours``.
     """
     from .ids import hash_ids, salt_from_env
     from .pipeline import plan_run, run_lock, stage_ingest
@@ -98,6 +107,10 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
         targets = np.sort(idx[row < 0])
         means, has = neighbour_mean_vectors(graph, known, cur_vec, targets)
         new = targets[has]
+        metrics = {"foldin_nodes": int(new.size), "foldin_without_known_neighbours": int(targets.size - new.size)}
+        if new.size == 0:  # a version identical to the current one would only push an older one out of retention
+            shutil.rmtree(plan["ingest_dir"], ignore_errors=True)
+            return {"version": None, "base_version": int(base), "foldin_candidates": int(targets.size), **metrics}
         table = pa.concat_tables([
             current,
             pa.table({"node_id": ids.take(pa.array(new)), "node_kind": nodes.column("node_kind").take(pa.array(new)),
@@ -105,7 +118,6 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
                       "vector": pa.FixedSizeListArray.from_arrays(pa.array(means[has].ravel()), dim)}),
         ])
         vectors = table.column("vector").combine_chunks().flatten().to_numpy().reshape(-1, dim)
-        metrics = {"foldin_nodes": int(new.size), "foldin_without_known_neighbours": int(targets.size - new.size)}
         version = publish_embeddings(
             cfg.store_path, table.column("node_id").combine_chunks(), vectors,
             node_kinds=table.column("node_kind").combine_chunks(),
@@ -115,4 +127,4 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
             timings={"foldin": round(time.perf_counter() - t0, 3)}, metrics=metrics, objective="fold_in",
             keep=cfg.store.keep)
         shutil.rmtree(plan["ingest_dir"], ignore_errors=True)
-    return {"version": version, "base_version": int(base), **metrics}
+    return {"version": version, "base_version": int(base), "foldin_candidates": int(targets.size), **metrics}

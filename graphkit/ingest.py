@@ -231,23 +231,62 @@ def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: st
     rel.create_view("raw_edges")
 
 
-def _check_rows(con, tables: list[EdgeTable], drop_null_ids: bool, where: str) -> tuple[int, int, int, int]:
+def _examples(con, check: str) -> list[tuple]:
+    """Up to 5 offending rows of ``sql/<check>.sql`` (table path first); [] when they cannot be read, so that
+    building an error message never fails itself."""
+    try:
+        return [tuple(r) for r in con.sql(load_sql(check)).fetchall()]
+    except Exception:  # noqa: BLE001 - the count already says what is wrong; the examples are a courtesy
+        return []
+
+
+def _format_rows(rows, limit: int = 300) -> str:
+    """Example rows (without their table path) as one short line of reprs; never raises."""
+    try:
+        text = "[" + ", ".join("(" + ", ".join(_safe_repr(v) for v in r[1:]) + ")" for r in rows) + "]"
+    except Exception:  # noqa: BLE001
+        return "[rows that cannot be shown]"
+    text = " ".join(text.split())
+    return text if len(text) <= limit else text[:limit] + "...]"
+
+
+def _safe_repr(value) -> str:
+    try:
+        return repr(value)
+    except Exception:  # noqa: BLE001
+        return f"<{type(value).__name__}>"
+
+
+def _check_rows(con, tables: list[EdgeTable], drop_null_ids: bool, where: str,
+                window: dict | None = None) -> tuple[int, int, int, int]:
     """Count the rows of ``windowed`` by what ingest does with them; raise on rows it cannot use."""
     counts = _run(con, "checks/edge_counts", {}).fetchall()[0]
     n_rows, n_outside, n_null_src, n_null_dst, n_null, n_loops, n_bad_w = (int(c) for c in counts)
     by_path = {t.path: t for t in tables}
     if n_null and not drop_null_ids:
-        path, src, _ = con.sql(load_sql("checks/null_ids")).fetchall()[0]
-        t = by_path[path]
-        col = t.source if src is None else t.target
+        ex = _examples(con, "checks/null_ids")
+        path = ex[0][0] if ex else where
+        t = by_path.get(path)
+        col = "" if t is None else f", e.g. in column {t.source if ex[0][1] is None else t.target!r}"
         raise EdgeTableError(f"{path}: {n_null} of {n_rows} rows have a null id ({n_null_src} in the source, "
-                             f"{n_null_dst} in the target column), e.g. in column {col!r}; set [input] "
-                             f"drop_null_ids = true to drop them")
+                             f"{n_null_dst} in the target column){col}; set [input] drop_null_ids = true to drop them")
     if n_bad_w:
-        ex = con.sql(load_sql("checks/bad_weights")).fetchall()
-        raise EdgeTableError(f"{ex[0][0]}: {n_bad_w} of {n_rows} rows have a null, NaN, infinite, zero or negative "
-                             f"value in weight column {by_path[ex[0][0]].weight!r}, e.g. "
-                             f"{[tuple(r[1:]) for r in ex]}")
+        ex = _examples(con, "checks/bad_weights")
+        path = ex[0][0] if ex else where
+        t = by_path.get(path)
+        column = "the weight column" if t is None else f"weight column {t.weight!r}"
+        raise EdgeTableError(f"{path}: {n_bad_w} of {n_rows} rows have a null, NaN, infinite, zero or negative "
+                             f"value in {column} (as float32: above 3.4e38 is infinite, below 1.4e-45 zero)"
+                             + (f", e.g. {_format_rows(ex)}" if ex else ""))
+    window = window or {}
+    if window.get("half_life_days") is not None and window.get("as_of") is not None:
+        n_zero, age = _run(con, "checks/decayed_weights", {"as_of": window["as_of"],
+                                                            "half_life_days": window["half_life_days"]}).fetchall()[0]
+        if n_zero:
+            raise EdgeTableError(f"{where}: {n_zero} of {n_rows} rows are so old that their weight, halved every "
+                                 f"[input] half_life_days = {window['half_life_days']:g} days, falls below the "
+                                 f"smallest float32 (the youngest is {float(age):.0f} days old); leave them out "
+                                 "with [input] last_days or since, or give a longer half-life")
     if n_rows - n_outside - n_null - n_loops <= 0:
         raise EdgeTableError(f"{where}: no usable edge ({n_rows} rows: {n_outside} outside the time window, "
                              f"{n_null} with a null id, {n_loops} self-loops); every node would be isolated")
@@ -274,7 +313,7 @@ def validate_edge_tables(tables, *, drop_null_ids: bool = False, window: dict | 
         _raw_view(con, tables, info["files"], info["id_type"])
         sql = load_sql("windowed_edges")
         con.execute("create temp view windowed as " + _inline_params(sql, _window_params(window, False)))
-        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where)
+        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where, window)
     except duckdb.Error as exc:
         raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
     finally:
@@ -343,7 +382,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     try:
         _raw_view(con, tables, info["files"], info["id_type"])
         _run(con, "windowed_edges", params, create="temp table windowed")
-        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where)
+        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where, window)
         _run(con, "edges", params, create="table edges")
         n_distinct, n_kept = (int(x or 0) for x in con.sql("select count(*), sum(n_rows) from edges").fetchall()[0])
         con.execute("create table nodes as " + load_sql("nodes"))

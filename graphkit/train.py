@@ -55,6 +55,8 @@ from numba.core import cgutils
 from numba.extending import intrinsic
 
 from . import progress
+from .checks import (DIM_RANGE, EPOCHS_MIN, LEARNING_RATE_MAX, MIN_LEARNING_RATE, NEGATIVES_MIN, SEED_MAX,
+                     SUBSAMPLE_RANGE, THREADS_MIN, WINDOW_MIN, max_threads)
 from .checks import check_int as _check_int
 from .rng import _G, _LOW32, _S32, _mix_kernel
 from .errors import ConfigError
@@ -473,12 +475,14 @@ def initial_vectors(n_nodes: int, dim: int, seed: int, *, out=None) -> np.ndarra
 
 
 
-def _check_rate(name, value, minimum, strict) -> float:
+def _check_rate(name, value, minimum, strict, maximum=None) -> float:
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
         raise ConfigError(f"{name} must be a number, got {value!r}")
     value = float(value)
     if not np.isfinite(value) or value < minimum or (strict and value == minimum):
         raise ConfigError(f"{name} must be {'>' if strict else '>='} {minimum} and finite, got {value!r}")
+    if maximum is not None and value > maximum:
+        raise ConfigError(f"{name} must be <= {maximum}, got {value!r}")
     return value
 
 
@@ -659,7 +663,7 @@ class _ChunkReader:
 
 # ---------------------------------------------------------------------------------------------------- driver
 def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_sampling", negatives=5, epochs=1, seed=0,
-                  threads=None, *, learning_rate=0.025, min_learning_rate=0.0001, subsample=0.0, init=None,
+                  threads=None, *, learning_rate=0.025, min_learning_rate=MIN_LEARNING_RATE, subsample=0.0, init=None,
                   memmap_dir=None, counts=None, chunk_walks=65536) -> np.ndarray:
     """Train skip-gram node vectors on random walks, chunk by chunk.
 
@@ -674,6 +678,7 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
     n_nodes : int
         Number of nodes (rows of the result), ``>= 1``.
     dim : int, default 128
+        In ``graphkit.checks.DIM_RANGE``.
     window : int, default 5
         Largest distance between a centre and a context node; every centre draws its own window size uniformly
         in ``1..window`` (word2vec's dynamic window).
@@ -688,11 +693,12 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         numba threads (default: numba's current setting). With 1 the result is bit-identical across runs;
         with more, threads update the shared vectors without locks and the result depends on timing.
     learning_rate, min_learning_rate : float
-        The rate decays linearly from ``learning_rate`` to ``min_learning_rate`` over all tokens of all epochs.
+        The rate decays linearly from ``learning_rate`` (at most ``LEARNING_RATE_MAX``) to ``min_learning_rate``
+        over all tokens of all epochs.
     subsample : float, default 0
         Subsampling threshold ``t`` of frequent nodes (Mikolov et al. 2013): a visit of a node of frequency ``f`` is
         kept with probability ``min(1, sqrt(t / f))`` before windows are formed. 0 keeps every visit; 1e-3 to 1e-5
-        are the usual values for words (common practice).
+        are the usual values for words (common practice). At most 1 (``SUBSAMPLE_RANGE``).
     init : ndarray of float, shape (n_nodes, dim), or tuple (rows, vectors), optional
         Warm start: the initial input vectors. A full matrix replaces the random start; a pair gives the start of
         nodes ``rows`` (distinct ints, shape (m,)) as ``vectors`` (shape (m, dim)) while every other node starts
@@ -720,21 +726,21 @@ def train_vectors(walks, n_nodes, dim=128, window=5, objective="negative_samplin
         ``-1..n_nodes-1`` or no node at all, or a one-shot iterator comes without ``counts`` or with ``epochs > 1``.
     """
     n_nodes = _check_int("n_nodes", n_nodes, 1)
-    dim = _check_int("dim", dim, 1)
-    window = _check_int("window", window, 1)
+    dim = _check_int("dim", dim, *DIM_RANGE)
+    window = _check_int("window", window, WINDOW_MIN)
     if objective not in OBJECTIVES:
         raise ConfigError(f"objective must be one of {', '.join(map(repr, OBJECTIVES))}, got {objective!r}")
     hs = objective == "hierarchical_softmax"
-    negatives = 0 if hs else _check_int("negatives", negatives, 1)
-    epochs = _check_int("epochs", epochs, 1)
-    seed = _check_int("seed", seed, 0, _MASK64)
-    threads = numba.get_num_threads() if threads is None else _check_int("threads", threads, 1,
-                                                                         numba.config.NUMBA_NUM_THREADS)
-    learning_rate = _check_rate("learning_rate", learning_rate, 0.0, strict=True)
+    negatives = 0 if hs else _check_int("negatives", negatives, NEGATIVES_MIN)
+    epochs = _check_int("epochs", epochs, EPOCHS_MIN)
+    seed = _check_int("seed", seed, 0, SEED_MAX)
+    threads = numba.get_num_threads() if threads is None else _check_int("threads", threads, THREADS_MIN,
+                                                                         max_threads())
+    learning_rate = _check_rate("learning_rate", learning_rate, 0.0, strict=True, maximum=LEARNING_RATE_MAX)
     min_learning_rate = _check_rate("min_learning_rate", min_learning_rate, 0.0, strict=False)
     if min_learning_rate > learning_rate:
         raise ConfigError(f"min_learning_rate must be <= learning_rate={learning_rate!r}, got {min_learning_rate!r}")
-    subsample = _check_rate("subsample", subsample, 0.0, strict=False)
+    subsample = _check_rate("subsample", subsample, SUBSAMPLE_RANGE[0], strict=False, maximum=SUBSAMPLE_RANGE[1])
     warm = _check_init(init, n_nodes, dim)
     memmap_dir = _check_memmap_dir(memmap_dir)
     chunk_walks = _check_int("chunk_walks", chunk_walks, 1)

@@ -62,6 +62,7 @@ from typing import NamedTuple
 import numba
 import numpy as np
 
+from .checks import LENGTH_MIN, P_Q_RANGE, PER_NODE_MIN, SEED_MAX, THREADS_MIN, max_threads
 from .checks import check_int as _check_int
 from .rng import _G, _LOW32, _S32, _mix_kernel
 from .errors import ConfigError
@@ -87,12 +88,11 @@ _BLOCK = 128
 #: Smallest Feistel domain (bits). Networks over 2-5 bits give visibly non-uniform shuffles (a chi-square test on
 #: 24000 passes over 5 nodes rejected them at p < 1e-15); from 6 bits on they passed.
 MIN_PERM_BITS = 8
-_MAX_SEED = (1 << 64) - 1
+_MAX_SEED = SEED_MAX
 #: Accepted values of ``dead_end``.
 DEAD_ENDS = ("stop", "restart")
-#: Range of p and q. A step costs up to max(1/p, 1, 1/q) / min(1/p, 1, 1/q) proposals where the likeliest class of
-#: neighbour is missing, so the range keeps that at most 10**6.
-P_Q_RANGE = (1e-3, 1e3)
+#: Range of p and q (``graphkit.checks.P_Q_RANGE``). A step costs up to max(1/p, 1, 1/q) / min(1/p, 1, 1/q)
+#: proposals where the likeliest class of neighbour is missing, so the range keeps that at most 10**6.
 _NO_ALIAS = np.empty(0, dtype=np.uint64)
 _NO_ALIAS.flags.writeable = False
 
@@ -430,7 +430,7 @@ def _count_restarts_kernel(walks, indptr):
 
 def check_walk_params(per_node, length, seed):
     """Validate the corpus parameters shared by every walk entry point; returns them as Python ints."""
-    return (_check_int("per_node", per_node, 1), _check_int("length", length, 2),
+    return (_check_int("per_node", per_node, PER_NODE_MIN), _check_int("length", length, LENGTH_MIN),
             _check_int("seed", seed, 0, _MAX_SEED))
 
 
@@ -454,7 +454,7 @@ def check_walk_options(weighted, p, q, dead_end):
 def _check_threads(threads):
     if threads is None:
         return numba.get_num_threads()
-    return _check_int("threads", threads, 1, numba.config.NUMBA_NUM_THREADS)
+    return _check_int("threads", threads, THREADS_MIN, max_threads())
 
 
 def _check_graph(graph):

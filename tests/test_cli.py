@@ -2,6 +2,7 @@
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 import time
@@ -27,6 +28,7 @@ def _snapshot(folder):
 
 @pytest.fixture(scope="module")
 def demo_store(tmp_path_factory):
+    """The demo refreshed once through the real CLI; read-only (a test that publishes works on a copy)."""
     store = tmp_path_factory.mktemp("demo") / "store"
     first = graphkit("refresh", DEMO, "--set", f'store.path="{store}"')
     assert first.returncode == 0, first.stderr[-3000:]
@@ -74,7 +76,7 @@ def test_similar_export_and_sql(demo_store, tmp_path):
 
 @pytest.mark.slow
 def test_second_refresh_publishes_version_2_and_bad_config_exits_2(demo_store, tmp_path):
-    store, _ = demo_store
+    store = Path(shutil.copytree(demo_store[0], tmp_path / "store"))
     second = graphkit("refresh", DEMO, "--set", f'store.path="{store}"', "--set", "walks.seed=8")
     assert second.returncode == 0, second.stderr[-3000:]
     assert "published version 2" in second.stdout

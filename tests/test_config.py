@@ -56,6 +56,55 @@ def test_bad_config_names_the_key(tmp_path, extra, overrides, match):
         load_config(_write(tmp_path, BASE + extra), overrides)
 
 
+TABLES = """
+[input]
+source_kind = "account"
+
+[[input.tables]]
+path = "t.parquet"
+source = "a"
+target = "b"
+
+[store]
+path = "store"
+"""
+
+
+@pytest.mark.parametrize("text, overrides, match", [
+    (TABLES, [], r"c\.toml: \[input\] source_kind is for the single-table keys; with \[\[input.tables\]\] give "
+                 r"source_kind in each entry"),
+    (BASE, ['dask.address="tcp://127.0.0.1:8786"', "dask.workers=2"],
+     r"^--set dask.workers: \[dask\] workers sizes the local cluster and cannot be combined with \[dask\] address"),
+    (BASE + '[dask]\naddress = "tcp://127.0.0.1:8786"\nworkers = 2\n', [], r"c\.toml: \[dask\] workers .*address"),
+    (BASE + "[gates]\nmin_link_auc = 0.8\n[evaluate]\nlink_holdout = 0\n", [],
+     r"c\.toml: \[gates\] min_link_auc needs held-out edges .* \[evaluate\] link_holdout = 0"),
+    (BASE + "[gates]\nmin_link_auc = 0.8\n", ["evaluate.link_holdout=0"], r"^--set evaluate.link_holdout: "),
+    (BASE + "[train]\nnegatives = 3\nobjective = \"hierarchical_softmax\"\n", [], r"\[train\] negatives applies"),
+    (BASE.replace('target = "receiver"', 'target = "receiver"\nsince = 2026-12-01\ntimestamp = "at"\n'
+                  'until = 2026-11-01'), [], r"\[input\] since \(2026-12-01\) must be before \[input\] until"),
+    (BASE.replace('target = "receiver"', 'target = "receiver"\nlast_days = 3'), [],
+     r"\[input\] last_days needs a timestamp column"),
+])
+def test_rules_between_keys(tmp_path, text, overrides, match):
+    with pytest.raises(ConfigError, match=match):
+        load_config(_write(tmp_path, text), overrides)
+
+
+def test_a_bad_value_whose_repr_fails_still_gives_one_line():
+    from graphkit.config import config_from_dict
+
+    class Odd:
+        def __repr__(self):
+            raise RuntimeError("no repr")
+
+    data = {"input": {"edges": "e.parquet", "source": "s", "target": "t"}, "store": {"path": "s"},
+            "train": {"dim": Odd()}}
+    with pytest.raises(ConfigError) as info:
+        config_from_dict(data, where="c.toml")
+    line = str(info.value)
+    assert line == "c.toml: [train] dim: input should be a valid integer, got <Odd>"
+
+
 def test_none_clears_an_optional_key(tmp_path):
     cfg = load_config(_write(tmp_path, BASE + "[gates]\nmin_link_auc = 0.9\n"), ["gates.min_link_auc=none"])
     assert cfg.gates.min_link_auc is None

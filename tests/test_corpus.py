@@ -32,8 +32,10 @@ def graph_dir(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def reference(graph_dir):
-    """The same corpus computed in one process, in memory."""
-    return random_walks(SparseGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=1)
+    """The same corpus computed in one process, in memory (read-only: shared by the module's tests)."""
+    walks = random_walks(SparseGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=1)
+    walks.setflags(write=False)
+    return walks
 
 
 @pytest.fixture(scope="module")

@@ -302,6 +302,8 @@ def planted_run():
     train_graph, pos, neg = holdout_edges(graph, 0.1, seed=0)
     n = train_graph.n_nodes
     vectors = graphkit.train_vectors(graphkit.random_walks(train_graph, per_node=10, length=40, seed=0), n, dim=64)
+    for a in (vectors, labels, pos, neg):  # shared by the module's tests: read-only
+        a.setflags(write=False)
     return vectors, labels, pos, neg
 
 
@@ -371,7 +373,19 @@ def test_neighbour_overlap_sample_and_bad_input():
     x = rng.normal(size=(500, 8)).astype(np.float32)
     y = x + 0.5 * rng.normal(size=x.shape).astype(np.float32)
     assert neighbour_overlap(x, y, sample=100, seed=3) == neighbour_overlap(x, y, sample=100, seed=3)
-    assert neighbour_overlap(x[:4], y[:4], k=10) >= 0.0  # k lowered to 3
+    # k is lowered to n - 1 = 3: every node's neighbours are then the 3 others in both versions, so the overlap
+    # is exactly 1 (with k kept at 10 it could not exceed 3 / 10)
+    assert neighbour_overlap(x[:4], y[:4], k=10) == 1.0
+    z = x[:4][::-1].copy()  # the same 4 vectors given to other nodes: the nearest neighbours change
+
+    def nearest(v):  # brute-force 1-NN by cosine
+        u = v / np.linalg.norm(v, axis=1, keepdims=True)
+        sim = u @ u.T
+        np.fill_diagonal(sim, -np.inf)
+        return sim.argmax(axis=1)
+
+    expected = float(np.mean(nearest(x[:4]) == nearest(z)))
+    assert expected < 1.0 and neighbour_overlap(x[:4], z, k=1) == expected
     with pytest.raises(ConfigError, match="same shared nodes"):
         neighbour_overlap(x, y[:10])
     with pytest.raises(ConfigError, match="k must be >= 1, got 0"):

@@ -529,6 +529,8 @@ def planted_corpus():
     walks = random_walks(graph, 10, 40, seed=11)
     names = [str(v) for v in range(graph.n_nodes)]
     sentences = [[names[v] for v in row if v >= 0] for row in walks.tolist()]
+    walks.setflags(write=False)  # shared by the module's tests (the lists are only read too)
+    labels.setflags(write=False)
     return walks, sentences, names, labels
 
 

@@ -2,6 +2,7 @@
 -- grain: one row for all tables together.
 -- inputs: view raw_edges and table windowed (see windowed_edges.sql).
 -- params: none.
+-- Weights are bad as the float32 the graph stores (see checks/bad_weights.sql).
 with everything as (
     select count(*) as n_rows from raw_edges
 ),
@@ -15,7 +16,8 @@ inside as (
         count(*) filter (where src is not null and dst is not null and src_kind = dst_kind and src = dst)
             as n_self_loops,
         count(*) filter (where src is not null and dst is not null
-                         and (weight is null or isnan(weight) or isinf(weight) or weight <= 0)) as n_bad_weights
+                         and (weight is null or isnan(weight) or isinf(weight) or weight < 1.401298464324817e-45
+                              or weight > 3.4028234663852886e38)) as n_bad_weights
     from windowed
 ),
 
