@@ -185,12 +185,18 @@ def stage_walks(cfg: RefreshConfig, plan: dict, which: str = "published") -> dic
     return {**manifest, "seconds": round(time.perf_counter() - t0, 3)}
 
 
+def previous_dir(plan: dict) -> Path:
+    """Where the run keeps the current version's rows matched to its nodes, read once and shared by warm start,
+    drift and alignment (:func:`graphkit.store.match_current`); removed with the ingest folder."""
+    return Path(plan["ingest_dir"]) / "previous"
+
+
 def _warm_start_rows(cfg: RefreshConfig, plan: dict):
     """(rows, vectors) of the nodes the current version has (trained rows only), for ``[train] warm_start``."""
     from .store import match_current
 
     node_ids, node_kinds = _published_ids(cfg, plan)
-    match = match_current(plan["store"], node_ids, node_kinds, cfg.train.dim)
+    match = match_current(plan["store"], node_ids, node_kinds, cfg.train.dim, cache_dir=previous_dir(plan))
     if match is None or match["new_rows"].size == 0:
         return None, 0
     return (match["new_rows"], match["old_vectors"]), int(match["new_rows"].size)
@@ -281,7 +287,8 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     vectors = np.load(train["vectors"])
     alignment = {"aligned_to": None}
     if cfg.store.align:
-        vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors)
+        vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors,
+                                              cache_dir=previous_dir(plan))
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
     if holdout:
