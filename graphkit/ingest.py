@@ -292,9 +292,32 @@ def _inline_params(sql: str, params: dict) -> str:
     return sql
 
 
+def _write_nodes(con, path: Path, hash_key: bytes | None) -> None:
+    """``nodes.parquet`` from the ``nodes`` table, in node_idx order; with ``hash_key`` plus ``node_pseudonym``, the
+    HMAC-SHA256 of each id (:func:`graphkit.ids.hash_ids`), computed here once per run, batch by batch."""
+    rel = con.sql("select node_idx, node_kind, node_id from nodes order by node_idx")
+    if hash_key is None:
+        rel.write_parquet(str(path), compression="zstd")
+        return
+    from .ids import hash_ids
+
+    con.execute("set preserve_insertion_order = true")  # the batches must keep the ORDER BY
+    writer = None
+    try:
+        for batch in rel.to_arrow_reader(FETCH_BATCH_ROWS):
+            table = pa.Table.from_batches([batch]).append_column(
+                "node_pseudonym", hash_ids(batch.column(2), hash_key))
+            if writer is None:
+                writer = pq.ParquetWriter(path, table.schema, compression="zstd")
+            writer.write_table(table)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
 def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: bool = False,
                   window: dict | None = None, threads: int | None = None,
-                  memory_limit: str | None = "1GB") -> dict[str, Any]:
+                  memory_limit: str | None = "1GB", hash_key: bytes | None = None) -> dict[str, Any]:
     """Read edge tables with DuckDB and write the graph a run works on.
 
     Rows outside the time window are left out; rows with a null id are dropped (``drop_null_ids``) or rejected;
@@ -314,6 +337,9 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         :meth:`graphkit.config.InputSection.time_window` gives.
     memory_limit : str, default "1GB"
         DuckDB's memory limit; past it the joins and sorts spill to ``out_dir/duckdb_tmp``.
+    hash_key : bytes, optional
+        ``[input] hash_ids``: the key of the pseudonyms, stored as column ``node_pseudonym`` of ``nodes.parquet``
+        so that no later stage hashes again.
 
     Returns
     -------
@@ -350,8 +376,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         n_nodes = int(con.sql("select count(*) from nodes").fetchall()[0][0])
         if n_nodes >= 2**31 - 1:
             raise EdgeTableError(f"{where}: {n_nodes} nodes exceed the int32 node index")
-        con.sql("select node_idx, node_kind, node_id from nodes order by node_idx") \
-           .write_parquet(str(out_dir / "nodes.parquet"), compression="zstd")
+        _write_nodes(con, out_dir / "nodes.parquet", hash_key)
         kinds = dict(con.sql("select node_kind, count(*) from nodes group by node_kind order by 1").fetchall())
         weighted = any(t.weight for t in tables) or params["half_life_days"] is not None
         n_entries = n_distinct if directed else 2 * n_distinct
@@ -377,6 +402,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         "id_type": info["id_type"],
         "directed": bool(directed),
         "weighted": weighted,
+        "hashed_ids": hash_key is not None,
         "window": {k: (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in window.items()},
         "counts": {
             "rows": n_rows, "outside_window": n_outside, "dropped_null_ids": n_null,

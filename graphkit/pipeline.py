@@ -108,12 +108,9 @@ def stage_ingest(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
         return {**read_json(out / "ingest.json"), "skipped": True}
     shutil.rmtree(out, ignore_errors=True)  # leftovers of a dead run
     window = {k: (datetime.fromisoformat(v) if isinstance(v, str) else v) for k, v in plan["window"].items()}
-    if cfg.input.hash_ids:  # fail before the long stages, not at publish
-        from .ids import salt_from_env
-
-        salt_from_env(cfg.input.hash_salt_env)
+    hash_key = salt_from_env(cfg.input.hash_salt_env) if cfg.input.hash_ids else None  # fails before long stages
     return ingest_tables(cfg.tables(), out, directed=cfg.input.directed, drop_null_ids=cfg.input.drop_null_ids,
-                         window=window)
+                         window=window, hash_key=hash_key)
 
 
 def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
@@ -248,15 +245,26 @@ def stage_holdout(cfg: RefreshConfig, plan: dict) -> dict[str, Any] | None:
 
 
 def _published_ids(cfg: RefreshConfig, plan: dict):
-    from .ids import hash_ids, salt_from_env
+    """(ids as published, node kinds) in node_idx order; with ``hash_ids`` the pseudonyms ingest stored."""
+    from .ids import hash_ids
 
-    nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
+    path = Path(plan["ingest_dir"]) / "nodes.parquet"
+    has_pseudonyms = "node_pseudonym" in pq.read_schema(path).names
+    columns = ["node_idx", "node_kind", "node_id"] + (["node_pseudonym"] if cfg.input.hash_ids and has_pseudonyms
+                                                      else [])
+    nodes = pq.read_table(path, columns=columns)
     idx = nodes.column("node_idx").to_numpy()
     if not np.array_equal(idx, np.arange(idx.size)):
         raise RuntimeError("node dictionary is not in node_idx order")
     node_ids = nodes.column("node_id").combine_chunks()
     if cfg.input.hash_ids:
-        node_ids = hash_ids(node_ids, salt_from_env(cfg.input.hash_salt_env))
+        key = salt_from_env(cfg.input.hash_salt_env)
+        stored = nodes.column("node_pseudonym").combine_chunks() if has_pseudonyms else None
+        # one id re-hashed tells whether the key is still the one ingest used (a resumed run may have another)
+        if stored is not None and (len(stored) == 0 or hash_ids(node_ids.slice(0, 1), key).equals(stored.slice(0, 1))):
+            node_ids = stored
+        else:
+            node_ids = hash_ids(node_ids, key)
     return node_ids, nodes.column("node_kind").combine_chunks()
 
 
