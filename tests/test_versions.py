@@ -410,3 +410,34 @@ def test_a_finished_refresh_removes_abandoned_stage_folders(tmp_path):
                       [f'store.path="{tmp_path}"', *FAST_DEMO, "store.keep_work_days=0"])
     graphkit.refresh(cfg)
     assert not recent.exists()
+
+
+def test_report_reads_only_the_projected_rows(tmp_path, monkeypatch):
+    """`graphkit report` fetches the seeded subset of rows the projection draws, row group by row group, and
+    draws the same 2-D view as a report given the whole version."""
+    import re
+
+    from graphkit import report as gr
+    from graphkit import store as gs
+    from graphkit.cli import main
+    from graphkit.store import save_diagnostics
+
+    monkeypatch.setattr(gr, "MAX_PROJECTED_POINTS", 500)
+    rng = np.random.default_rng(2)
+    n = 1800
+    x = rng.normal(size=(n, 8)).astype(np.float32)
+    labels = np.array([f"group-{i % 3}" for i in range(n)], dtype=object)
+    version = publish(tmp_path, list(range(n)), x)
+    save_diagnostics(tmp_path, version, degrees=np.ones(n), labels=labels)
+    read_whole = []
+    monkeypatch.setattr(gs, "read_version", lambda *a, **k: read_whole.append(a))
+    monkeypatch.setattr(gs, "read_table", lambda *a, **k: read_whole.append(a))
+    assert main(["report", str(tmp_path), "--out", str(tmp_path / "r.html")]) == 0
+    assert read_whole == []
+    html = (tmp_path / "r.html").read_text()
+    assert "Showing 500 of 1800 vectors." in html
+    full = gr.write_report(tmp_path / "full.html", versions=list_versions(tmp_path), degrees=np.ones(n),
+                           vectors=x, labels=list(labels), title="t")
+    image = re.compile(r'<img src="data:image/png;base64,([A-Za-z0-9+/=]+)"')
+    projection = 1  # degrees first; no visit counts
+    assert image.findall(html)[projection] == image.findall(full.read_text())[projection]
