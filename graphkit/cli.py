@@ -209,22 +209,33 @@ def cmd_similar(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from .report import write_report
-    from .store import list_versions, load_diagnostics, read_version
+    import numpy as np
+    import pyarrow.parquet as pq
+
+    from .report import projected_rows, write_report
+    from .store import _gather_rows, list_versions, load_diagnostics
 
     rows = list_versions(args.store)
     current = next((r for r in rows if r["is_current"]), None)
-    vectors, diag = None, {}
+    vectors, diag, labels, total = None, {}, None, None
     if current is not None:
-        _, vectors = read_version(args.store)
+        # only the rows the projection draws (the same seeded subset the run's own report drew), read one row
+        # group at a time: the version is never held whole
+        pf = pq.ParquetFile(Path(args.store) / current["path"])
+        total = pf.metadata.num_rows
+        dim = pf.schema_arrow.field("vector").type.list_size
+        picked = projected_rows(total)
+        vectors = np.empty((picked.size, dim), dtype=np.float32)
+        _gather_rows(pf, picked, vectors, dim)
         diag = load_diagnostics(args.store, current["version"])
-    labels = diag.get("labels")
+        if diag.get("labels") is not None and len(diag["labels"]) == total:
+            labels = [x or None for x in diag["labels"][picked].tolist()]
     if args.out:
         out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
     else:
         out = Path(args.store) / "reports" / "report.html"
     write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
-                 vectors=vectors, labels=None if labels is None else [x or None for x in labels.tolist()],
+                 vectors=vectors, labels=labels, vectors_total=total,
                  title=f"graphkit store {Path(args.store).resolve().name}"
                        + (f": version {current['version']} current" if current else ""))
     print(f"wrote {out}")

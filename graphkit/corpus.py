@@ -7,14 +7,23 @@ Layout of ``corpus_dir``::
                               8 bytes per edge) that every shard task memory-maps; removed once the corpus is complete
     shard-00000.parquet       one column ``walk``: FixedSizeList<int32>[length], -1 pads stopped walks; the footer
                               holds the shard's token and restart counts
-    shard-00000.counts.npy    int64 [n_nodes]: how often each node occurs in that shard
     ...
+    visits.npy                int64 [n_nodes]: how often each node occurs in the corpus, counted once all shards
+                              are complete by one streaming pass over them (written just before the manifest)
     manifest.json             written last: its presence marks a complete corpus; holds the run's diagnostics
 
 Shard ``i`` holds the walks with global ids in ``[start_i, stop_i)`` in order, so concatenating the shards gives
 exactly ``random_walks(graph, per_node, length, seed, weighted=..., p=..., q=..., dead_end=...)``, whatever the
 number of shards or workers. A shard counts as complete only once its Parquet file, written under a temporary name
-and renamed into place after its counts file, exists; a rerun skips complete shards.
+and renamed into place, exists with its footer counts; a rerun skips complete shards.
+
+A shard writes only its walks: no per-node file, so what it writes is proportional to the shard, not to the graph.
+Visit counts accumulate in place: on the in-process cluster every worker thread owns one int64 [n_nodes] array for
+the whole run and adds each row group of walks into it while the walks are in memory (:func:`accumulate_visits`);
+the arrays are summed once when all shards are complete and written as ``visits.npy``. Shards the run did not count
+itself (kept from an earlier run, or written on an external cluster whose workers cannot share arrays with this
+process) are counted by one streaming pass over just those shards (:func:`count_corpus_visits`). An array that saw
+part of a shard that then failed is dropped, and its shards are counted by that pass, so no visit is counted twice.
 """
 
 from __future__ import annotations
@@ -23,10 +32,14 @@ import fcntl
 import json
 import math
 import os
+import queue
+import threading
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from pathlib import Path
 
+import numba
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -36,13 +49,14 @@ from .errors import ConfigError
 from .faults import fault_point
 from .graph import SparseGraph
 from .walks import (_check_int, _prepare, _run, alias_table, check_walk_options, check_walk_params, count_restarts,
-                    count_visits, walk_diagnostics)
+                    walk_diagnostics)
 
-__all__ = ["write_walk_corpus", "WalkCorpus"]
+__all__ = ["write_walk_corpus", "WalkCorpus", "accumulate_visits", "count_corpus_visits"]
 
 MANIFEST = "manifest.json"
 PLAN = "plan.json"
 ALIAS = "alias.npy"
+VISITS = "visits.npy"
 _LOCK = ".lock"
 #: 2: walk options (weighted, p, q, dead_end) in the plan, diagnostics in the manifest.
 _FORMAT = 2
@@ -61,10 +75,6 @@ _META_RESTARTS = "graphkit.n_restarts"
 
 def shard_name(index: int) -> str:
     return f"shard-{index:05d}.parquet"
-
-
-def counts_name(index: int) -> str:
-    return f"shard-{index:05d}.counts.npy"
 
 
 def _tmp_name(final: Path) -> Path:
@@ -125,34 +135,88 @@ def _locked(corpus_dir: Path):
         os.close(fd)
 
 
+# ---------------------------------------------------------------------------------------------------- visit arrays
+class _VisitArray:
+    """One worker thread's visit counts: int64 [n_nodes], the shards fully added into it, and whether a failed shard
+    left part of its walks in it (the array is then not used)."""
+
+    def __init__(self, n_nodes: int):
+        self.counts = np.zeros(n_nodes, dtype=np.int64)
+        self.shards: list[int] = []
+        self.spoiled = False
+
+
+class _VisitPool:
+    """The visit arrays of one corpus run, lent to shard tasks one at a time (at most one per running task)."""
+
+    def __init__(self, n_nodes: int, size: int):
+        self.arrays = [_VisitArray(n_nodes) for _ in range(size)]
+        self._free: queue.SimpleQueue = queue.SimpleQueue()
+        for array in self.arrays:
+            self._free.put(array)
+
+    def take(self) -> _VisitArray:
+        return self._free.get()
+
+    def give(self, array: _VisitArray) -> None:
+        self._free.put(array)
+
+    def fold(self) -> tuple[np.ndarray | None, set[int]]:
+        """The sum of the usable arrays (None when there is none) and the shards it covers."""
+        usable = [a for a in self.arrays if not a.spoiled and a.shards]
+        seen = [i for a in usable for i in a.shards]
+        if len(seen) != len(set(seen)):  # a shard written twice in this run: count every shard again
+            return None, set()
+        if not usable:
+            return None, set()
+        total = usable[0].counts
+        for a in usable[1:]:
+            total += a.counts
+        return total, set(seen)
+
+
+#: Visit pools of the corpus runs in progress in this process, by token; shard tasks on the in-process cluster find
+#: theirs here (a task in another process finds none and leaves the counting to the driver).
+_POOLS: dict[str, _VisitPool] = {}
+_POOLS_LOCK = threading.Lock()
+
+
 # ---------------------------------------------------------------------------------------------------- shard task
 def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: int, *, per_node: int, length: int,
                 seed: int, weighted: bool = True, p: float = 1.0, q: float = 1.0, dead_end: str = "stop",
-                alias_path: str | None = None, row_group_walks: int = ROW_GROUP_WALKS) -> dict:
+                alias_path: str | None = None, row_group_walks: int = ROW_GROUP_WALKS,
+                visits_pool: str | None = None) -> dict:
     """Compute walks ``[start, stop)`` and write them as shard ``index`` of ``corpus_dir``; returns a small dict.
 
     Runs inside a Dask worker: it memory-maps the graph (and the alias table at ``alias_path`` for weighted walks)
-    itself and keeps at most one row group of walks in memory. Both files are written under temporary names and
-    renamed into place, counts first, so the Parquet file's presence marks a complete shard.
+    itself and keeps at most one row group of walks in memory. The Parquet file is written under a temporary name
+    and renamed into place, so its presence marks a complete shard. Nothing proportional to the graph is allocated
+    or written per shard: when the pool ``visits_pool`` of this process is there, each row group's visits are added
+    in place into one of its arrays (``"counted": True`` in the result).
     """
     graph = SparseGraph.load(graph_dir, mmap=True)
     alias = np.load(alias_path, mmap_mode="r") if alias_path is not None else None
     # check=False: the driver checked the graph files once (sorted rows for second-order walks)
     walker = _prepare(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
     corpus_dir = Path(corpus_dir)
-    final_parquet, final_counts = corpus_dir / shard_name(index), corpus_dir / counts_name(index)
-    tmp_parquet, tmp_counts = _tmp_name(final_parquet), _tmp_name(final_counts)
+    final_parquet = corpus_dir / shard_name(index)
+    tmp_parquet = _tmp_name(final_parquet)
     schema = pa.schema([pa.field("walk", pa.list_(pa.int32(), length), nullable=False)],
                        metadata={"graphkit.first_walk": str(start), "graphkit.seed": str(seed)})
-    counts = np.zeros(graph.n_nodes, dtype=np.int64)
-    n_restarts = 0
+    n_tokens = n_restarts = 0
+    with _POOLS_LOCK:
+        pool = _POOLS.get(visits_pool) if visits_pool is not None else None
+    visits = pool.take() if pool is not None else None
     try:
         with pq.ParquetWriter(tmp_parquet, schema, compression="zstd", use_dictionary=False) as writer:
             for a in range(start, stop, row_group_walks):
                 b = min(stop, a + row_group_walks)
                 # threads=1: the Dask worker threads are the parallelism (numba threads x Dask threads <= cores)
                 walks = _run(walker, a, b, length, seed, threads=1)
-                counts += count_visits(walks, graph.n_nodes)
+                if visits is not None:
+                    n_tokens += accumulate_visits(walks, visits.counts)
+                else:
+                    n_tokens += int(np.count_nonzero(walks >= 0))
                 if walker.restart:
                     n_restarts += count_restarts(walks, graph)
                 fsl = pa.FixedSizeListArray.from_arrays(pa.array(walks.reshape(-1)), length)
@@ -160,15 +224,19 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
                 del walks, fsl
             if start == stop:
                 writer.write_table(schema.empty_table())
-            writer.add_key_value_metadata({_META_TOKENS: str(int(counts.sum())), _META_RESTARTS: str(n_restarts)})
-        with open(tmp_counts, "wb") as f:
-            np.save(f, counts)
-        os.replace(tmp_counts, final_counts)
+            writer.add_key_value_metadata({_META_TOKENS: str(n_tokens), _META_RESTARTS: str(n_restarts)})
         os.replace(tmp_parquet, final_parquet)
+        if visits is not None:
+            visits.shards.append(index)
+    except BaseException:
+        if visits is not None:
+            visits.spoiled = True  # holds part of a shard that is not complete
+        raise
     finally:
-        for tmp in (tmp_parquet, tmp_counts):
-            tmp.unlink(missing_ok=True)
-    return {"index": index, "n_tokens": int(counts.sum()), "n_restarts": n_restarts}
+        tmp_parquet.unlink(missing_ok=True)
+        if visits is not None:
+            pool.give(visits)
+    return {"index": index, "n_tokens": n_tokens, "n_restarts": n_restarts, "counted": visits is not None}
 
 
 def _shard_footer(corpus_dir: Path, index: int) -> dict | None:
@@ -183,12 +251,12 @@ def _shard_footer(corpus_dir: Path, index: int) -> dict | None:
 
 
 def _shard_entry(index, start, stop, n_tokens, n_restarts):
-    return {"index": index, "file": shard_name(index), "counts": counts_name(index), "start": start, "stop": stop,
+    return {"index": index, "file": shard_name(index), "start": start, "stop": stop,
             "n_walks": stop - start, "n_tokens": n_tokens, "n_restarts": n_restarts}
 
 
 def _is_complete(corpus_dir: Path, index: int) -> bool:
-    return (corpus_dir / shard_name(index)).is_file() and (corpus_dir / counts_name(index)).is_file()
+    return (corpus_dir / shard_name(index)).is_file()
 
 
 # ---------------------------------------------------------------------------------------------------- driver
@@ -270,7 +338,17 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
                     "dead_end": dead_end, "graph": _graph_fingerprint(graph_dir),
                     "bounds": plan_shards(n_walks, threads, n_shards) if n_shards is not None else None}
             plan = _settle_plan(corpus_dir, plan, threads)
-            manifest = _run_shards(client, graph, graph_dir, corpus_dir, plan)
+            token = None
+            if cluster is not None:  # tasks run in this process: one visit array per worker thread
+                token = uuid.uuid4().hex
+                with _POOLS_LOCK:
+                    _POOLS[token] = _VisitPool(n_nodes, threads)
+            try:
+                manifest = _run_shards(client, graph, graph_dir, corpus_dir, plan, visits_pool=token)
+            finally:
+                if token is not None:
+                    with _POOLS_LOCK:
+                        _POOLS.pop(token, None)
     finally:
         if cluster is not None:
             cluster.close()
@@ -330,7 +408,8 @@ def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
     return final
 
 
-def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, plan: dict) -> dict:
+def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, plan: dict, *,
+                visits_pool: str | None = None) -> dict:
     import distributed
 
     for stale in corpus_dir.glob("*.tmp-*"):  # left by a crashed run; we hold the lock, so nobody writes them now
@@ -347,7 +426,8 @@ def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, p
     alias_path = str(_ensure_alias(graph, corpus_dir)) if pending and plan["weighted"] else None
     options = {k: plan[k] for k in ("per_node", "length", "seed", "weighted", "p", "q", "dead_end")}
     futures = [client.submit(write_shard, str(graph_dir), str(corpus_dir), index, start, stop, **options,
-                             alias_path=alias_path, row_group_walks=ROW_GROUP_WALKS, pure=False)
+                             alias_path=alias_path, row_group_walks=ROW_GROUP_WALKS, visits_pool=visits_pool,
+                             pure=False)
                for index, start, stop in pending]
     total = plan["n_walks"] * plan["length"]
 
@@ -368,20 +448,124 @@ def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, p
     manifest = {key: plan[key] for key in _PLAN_KEYS}
     manifest["n_tokens"] = sum(s["n_tokens"] for s in shards)
     manifest["shards"] = shards
-    manifest["diagnostics"] = _diagnostics(graph, corpus_dir, shards, plan["per_node"])
+    visits, counted = _POOLS[visits_pool].fold() if visits_pool in _POOLS else (None, set())
+    rest = [s for s in shards if s["index"] not in counted]  # kept from an earlier run, or counted elsewhere
+    if visits is None:
+        visits = count_corpus_visits(corpus_dir, rest, plan["n_nodes"], plan["length"])
+    elif rest:
+        visits += count_corpus_visits(corpus_dir, rest, plan["n_nodes"], plan["length"])
+    if int(visits.sum()) != manifest["n_tokens"]:
+        raise ConfigError(f"walk corpus {str(corpus_dir)!r}: the shards hold {int(visits.sum())} tokens, their "
+                          f"footers say {manifest['n_tokens']}; delete the folder and run again")
+    tmp = _tmp_name(corpus_dir / VISITS)
+    try:
+        with open(tmp, "wb") as f:
+            np.save(f, visits)
+        os.replace(tmp, corpus_dir / VISITS)
+    finally:
+        tmp.unlink(missing_ok=True)
+    manifest["visits"] = VISITS
+    manifest["diagnostics"] = _diagnostics(graph, visits, shards, plan["per_node"])
     _write_json_atomic(corpus_dir / MANIFEST, manifest)
     (corpus_dir / ALIAS).unlink(missing_ok=True)  # scratch of the shard tasks; a complete corpus never needs it
+    for old in corpus_dir.glob("shard-*.counts.npy"):  # dense per-shard counts of an older run: superseded
+        old.unlink(missing_ok=True)
     return manifest
 
 
-def _diagnostics(graph: SparseGraph, corpus_dir: Path, shards: list[dict], per_node: int) -> dict:
-    visits = np.zeros(graph.n_nodes, dtype=np.int64)
-    for shard in shards:
-        visits += np.load(corpus_dir / shard["counts"], mmap_mode="r")
+def _diagnostics(graph: SparseGraph, visits: np.ndarray, shards: list[dict], per_node: int) -> dict:
     out_deg = graph.degrees()
     in_deg = np.bincount(np.asarray(graph.indices), minlength=graph.n_nodes) if graph.directed else None
     return walk_diagnostics(visits, out_deg, per_node=per_node, in_degrees=in_deg,
                             n_restarts=sum(s["n_restarts"] for s in shards))
+
+
+# ---------------------------------------------------------------------------------------------------- visit counts
+@numba.njit(cache=True, nogil=True)
+def _accumulate_visits_kernel(flat, counts):
+    """Add one to ``counts[v]`` (int64 [n_nodes], in place) for every ``0 <= v < n_nodes`` of ``flat`` (int32
+    [size]); ``-1`` is padding. Returns (tokens added, entries outside ``-1..n_nodes-1``, which are skipped)."""
+    n = counts.shape[0]
+    added = 0
+    bad = 0
+    for i in range(flat.shape[0]):
+        v = flat[i]
+        if v >= 0 and v < n:
+            counts[v] += 1
+            added += 1
+        elif v != -1:
+            bad += 1
+    return added, bad
+
+
+def accumulate_visits(walks, counts) -> int:
+    """Add the visits in ``walks`` to ``counts`` in place; returns the number of tokens added.
+
+    Parameters
+    ----------
+    walks : ndarray of int32, shape (n_walks, length) or (size,)
+        Node indices, ``-1`` for padding.
+    counts : ndarray of int64, shape (n_nodes,)
+        C-contiguous and writeable; receives the counts.
+
+    Raises
+    ------
+    ConfigError
+        ``counts`` is not a writeable C-contiguous int64 vector, or ``walks`` holds a value outside
+        ``-1..n_nodes-1`` (``counts`` then holds the valid entries' visits).
+    """
+    if not (isinstance(counts, np.ndarray) and counts.dtype == np.int64 and counts.ndim == 1
+            and counts.flags.c_contiguous and counts.flags.writeable):
+        raise ConfigError("counts must be a writeable C-contiguous int64 array of one value per node")
+    flat = np.ascontiguousarray(walks, dtype=np.int32).reshape(-1)
+    added, bad = _accumulate_visits_kernel(flat, counts)
+    if bad:
+        raise ConfigError(f"walks hold {bad} node indices outside -1..{counts.shape[0] - 1}")
+    return int(added)
+
+
+def _row_groups(corpus_dir: Path, shards: list[dict]) -> list[tuple[Path, int]]:
+    groups = []
+    for shard in shards:
+        path = corpus_dir / shard["file"]
+        groups += [(path, g) for g in range(pq.ParquetFile(path).num_row_groups)]
+    return groups
+
+
+def count_corpus_visits(corpus_dir, shards: list[dict], n_nodes: int, length: int, *,
+                        threads: int | None = None) -> np.ndarray:
+    """How often each node occurs in the given shards of a corpus: one streaming pass, int64 [n_nodes].
+
+    Each of ``threads`` threads (default: the cores this process may use) reads its share of the row groups one at
+    a time and adds it into its own count array in place; the arrays are summed once. Memory: ``threads`` count
+    arrays plus one row group per thread; the corpus is never held whole.
+    """
+    corpus_dir = Path(corpus_dir)
+    groups = _row_groups(corpus_dir, shards)
+    threads = max(1, min(threads or len(os.sched_getaffinity(0)), len(groups)))
+    expected = pa.list_(pa.int32(), length)
+
+    def count(share):
+        counts = np.zeros(n_nodes, dtype=np.int64)
+        for path, group in share:
+            column = pq.ParquetFile(path).read_row_group(group, columns=["walk"]).column("walk")
+            if column.type != expected:
+                raise ConfigError(f"{str(path)!r}: column 'walk' must be {expected}, got {column.type}")
+            for chunk in column.chunks:
+                try:
+                    accumulate_visits(chunk.flatten().to_numpy(zero_copy_only=True), counts)
+                except ConfigError as exc:
+                    raise ConfigError(f"{str(path)!r}: {exc}") from None
+        return counts
+
+    if threads == 1:
+        return count(groups)
+    with ThreadPoolExecutor(threads) as pool:  # pyarrow's reads and the nogil kernel run in parallel
+        parts = list(pool.map(count, [groups[i::threads] for i in range(threads)]))
+    total = parts[0]
+    for part in parts[1:]:
+        total += part
+    return total
 
 
 # ---------------------------------------------------------------------------------------------------- reader
@@ -419,10 +603,12 @@ class WalkCorpus:
         self.n_nodes = int(self.manifest["n_nodes"])
         #: What the run recorded about its walks (see :func:`graphkit.walks.walk_diagnostics`).
         self.diagnostics = self.manifest.get("diagnostics", {})
-        for shard in self.manifest["shards"]:
-            for key in ("file", "counts"):
-                if not (self.corpus_dir / shard[key]).is_file():
-                    raise ConfigError(f"walk corpus {str(self.corpus_dir)!r} is missing {shard[key]}")
+        # ``visits``: one count file for the corpus; corpora written before it name a count file per shard
+        keys = ("file",) if "visits" in self.manifest else ("file", "counts")
+        names = [shard[key] for shard in self.manifest["shards"] for key in keys]
+        for name in names + ([self.manifest["visits"]] if "visits" in self.manifest else []):
+            if not (self.corpus_dir / name).is_file():
+                raise ConfigError(f"walk corpus {str(self.corpus_dir)!r} is missing {name}")
 
     def __len__(self) -> int:
         return self.n_walks
@@ -448,7 +634,13 @@ class WalkCorpus:
                         yield walks[a:a + self.chunk_walks]
 
     def visit_counts(self) -> np.ndarray:
-        """int64 [n_nodes]: how often each node occurs in the corpus (summed from the shards' count files)."""
+        """int64 [n_nodes]: how often each node occurs in the corpus (counted once when the corpus was written)."""
+        if "visits" in self.manifest:
+            counts = np.load(self.corpus_dir / self.manifest["visits"])
+            if counts.shape != (self.n_nodes,) or counts.dtype != np.int64:
+                raise ConfigError(f"{str(self.corpus_dir / self.manifest['visits'])!r} must hold int64 "
+                                  f"[{self.n_nodes}], got {counts.dtype} {counts.shape}")
+            return counts
         total = np.zeros(self.n_nodes, dtype=np.int64)
         for shard in self.manifest["shards"]:
             total += np.load(self.corpus_dir / shard["counts"], mmap_mode="r")

@@ -22,7 +22,7 @@ import pyarrow.parquet as pq
 from .errors import EdgeTableError, GraphDataWarning
 from .faults import fault_point
 from .graph import SparseGraph
-from .io import fingerprint_files, resolve_input_files, write_json_atomic
+from .io import digest, fingerprint_files, resolve_input_files, write_json_atomic
 from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
 
 __all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "validate_edge_tables", "ingest_tables",
@@ -299,14 +299,32 @@ def _window_params(window: dict | None, directed: bool) -> dict:
             "half_life_days": window.get("half_life_days"), "directed": bool(directed)}
 
 
+#: Row checks that passed in this process, by :func:`_checks_key`: the preflight before Prefect starts scans the rows;
+#: the flow's own preflight and the ingest then reuse the counts as long as the files are unchanged.
+_CHECKED: dict[str, dict[str, int]] = {}
+
+
+def _checks_key(tables: list[EdgeTable], files, drop_null_ids: bool, window: dict | None) -> str:
+    """What the row checks depend on: the table specs, the files (path, size, footer hash), the null-id policy and
+    the window bounds (not the decay reference, which the checks do not use)."""
+    window = window or {}
+    return digest({"tables": [t.__dict__ for t in tables], "files": fingerprint_files([f for fs in files for f in fs]),
+                   "drop_null_ids": bool(drop_null_ids), "since": window.get("since"), "until": window.get("until")})
+
+
 def validate_edge_tables(tables, *, drop_null_ids: bool = False, window: dict | None = None) -> dict[str, Any]:
     """Every check ingest makes on the rows, without building anything: one scan of the tables in DuckDB.
 
     Run before a refresh starts, so that bad input fails within seconds. Returns the counts
-    (rows, outside_window, null_ids, self_loops) together with :func:`check_edge_tables`' result.
+    (rows, outside_window, null_ids, self_loops) together with :func:`check_edge_tables`' result. The scan runs
+    once per process and input: called again on unchanged files, it reads only their footers, and
+    :func:`ingest_tables` takes the counts instead of checking the rows again.
     """
     tables = [EdgeTable.of(t) for t in tables]
     info = check_edge_tables(tables)
+    key = _checks_key(tables, info["files"], drop_null_ids, window)
+    if key in _CHECKED:
+        return {**info, "counts": dict(_CHECKED[key])}
     where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
     con = work_connection()
     try:
@@ -318,8 +336,9 @@ def validate_edge_tables(tables, *, drop_null_ids: bool = False, window: dict | 
         raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
     finally:
         con.close()
-    return {**info, "counts": {"rows": n_rows, "outside_window": n_outside, "null_ids": n_null,
-                               "self_loops": n_loops}}
+    counts = {"rows": n_rows, "outside_window": n_outside, "null_ids": n_null, "self_loops": n_loops}
+    _CHECKED[key] = counts
+    return {**info, "counts": dict(counts)}
 
 
 def _inline_params(sql: str, params: dict) -> str:
@@ -331,9 +350,32 @@ def _inline_params(sql: str, params: dict) -> str:
     return sql
 
 
+def _write_nodes(con, path: Path, hash_key: bytes | None) -> None:
+    """``nodes.parquet`` from the ``nodes`` table, in node_idx order; with ``hash_key`` plus ``node_pseudonym``, the
+    HMAC-SHA256 of each id (:func:`graphkit.ids.hash_ids`), computed here once per run, batch by batch."""
+    rel = con.sql("select node_idx, node_kind, node_id from nodes order by node_idx")
+    if hash_key is None:
+        rel.write_parquet(str(path), compression="zstd")
+        return
+    from .ids import hash_ids
+
+    con.execute("set preserve_insertion_order = true")  # the batches must keep the ORDER BY
+    writer = None
+    try:
+        for batch in rel.to_arrow_reader(FETCH_BATCH_ROWS):
+            table = pa.Table.from_batches([batch]).append_column(
+                "node_pseudonym", hash_ids(batch.column(2), hash_key))
+            if writer is None:
+                writer = pq.ParquetWriter(path, table.schema, compression="zstd")
+            writer.write_table(table)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
 def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: bool = False,
                   window: dict | None = None, threads: int | None = None,
-                  memory_limit: str | None = "1GB") -> dict[str, Any]:
+                  memory_limit: str | None = "1GB", hash_key: bytes | None = None) -> dict[str, Any]:
     """Read edge tables with DuckDB and write the graph a run works on.
 
     Rows outside the time window are left out; rows with a null id are dropped (``drop_null_ids``) or rejected;
@@ -353,6 +395,9 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         :meth:`graphkit.config.InputSection.time_window` gives.
     memory_limit : str, default "1GB"
         DuckDB's memory limit; past it the joins and sorts spill to ``out_dir/duckdb_tmp``.
+    hash_key : bytes, optional
+        ``[input] hash_ids``: the key of the pseudonyms, stored as column ``node_pseudonym`` of ``nodes.parquet``
+        so that no later stage hashes again.
 
     Returns
     -------
@@ -382,15 +427,19 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     try:
         _raw_view(con, tables, info["files"], info["id_type"])
         _run(con, "windowed_edges", params, create="temp table windowed")
-        n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where, window)
+        checked = _CHECKED.get(_checks_key(tables, info["files"], drop_null_ids, window))
+        if checked is not None:  # the preflight of this run checked these rows: no second pass over them
+            n_rows, n_outside, n_null, n_loops = (checked[k] for k in ("rows", "outside_window", "null_ids",
+                                                                      "self_loops"))
+        else:
+            n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where, window)
         _run(con, "edges", params, create="table edges")
         n_distinct, n_kept = (int(x or 0) for x in con.sql("select count(*), sum(n_rows) from edges").fetchall()[0])
         con.execute("create table nodes as " + load_sql("nodes"))
         n_nodes = int(con.sql("select count(*) from nodes").fetchall()[0][0])
         if n_nodes >= 2**31 - 1:
             raise EdgeTableError(f"{where}: {n_nodes} nodes exceed the int32 node index")
-        con.sql("select node_idx, node_kind, node_id from nodes order by node_idx") \
-           .write_parquet(str(out_dir / "nodes.parquet"), compression="zstd")
+        _write_nodes(con, out_dir / "nodes.parquet", hash_key)
         kinds = dict(con.sql("select node_kind, count(*) from nodes group by node_kind order by 1").fetchall())
         weighted = any(t.weight for t in tables) or params["half_life_days"] is not None
         n_entries = n_distinct if directed else 2 * n_distinct
@@ -416,6 +465,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         "id_type": info["id_type"],
         "directed": bool(directed),
         "weighted": weighted,
+        "hashed_ids": hash_key is not None,
         "window": {k: (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in window.items()},
         "counts": {
             "rows": n_rows, "outside_window": n_outside, "dropped_null_ids": n_null,

@@ -108,12 +108,9 @@ def stage_ingest(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
         return {**read_json(out / "ingest.json"), "skipped": True}
     shutil.rmtree(out, ignore_errors=True)  # leftovers of a dead run
     window = {k: (datetime.fromisoformat(v) if isinstance(v, str) else v) for k, v in plan["window"].items()}
-    if cfg.input.hash_ids:  # fail before the long stages, not at publish
-        from .ids import salt_from_env
-
-        salt_from_env(cfg.input.hash_salt_env)
+    hash_key = salt_from_env(cfg.input.hash_salt_env) if cfg.input.hash_ids else None  # fails before long stages
     return ingest_tables(cfg.tables(), out, directed=cfg.input.directed, drop_null_ids=cfg.input.drop_null_ids,
-                         window=window)
+                         window=window, hash_key=hash_key)
 
 
 def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
@@ -185,12 +182,18 @@ def stage_walks(cfg: RefreshConfig, plan: dict, which: str = "published") -> dic
     return {**manifest, "seconds": round(time.perf_counter() - t0, 3)}
 
 
+def previous_dir(plan: dict) -> Path:
+    """Where the run keeps the current version's rows matched to its nodes, read once and shared by warm start,
+    drift and alignment (:func:`graphkit.store.match_current`); removed with the ingest folder."""
+    return Path(plan["ingest_dir"]) / "previous"
+
+
 def _warm_start_rows(cfg: RefreshConfig, plan: dict):
     """(rows, vectors) of the nodes the current version has (trained rows only), for ``[train] warm_start``."""
     from .store import match_current
 
     node_ids, node_kinds = _published_ids(cfg, plan)
-    match = match_current(plan["store"], node_ids, node_kinds, cfg.train.dim)
+    match = match_current(plan["store"], node_ids, node_kinds, cfg.train.dim, cache_dir=previous_dir(plan))
     if match is None or match["new_rows"].size == 0:
         return None, 0
     return (match["new_rows"], match["old_vectors"]), int(match["new_rows"].size)
@@ -242,15 +245,26 @@ def stage_holdout(cfg: RefreshConfig, plan: dict) -> dict[str, Any] | None:
 
 
 def _published_ids(cfg: RefreshConfig, plan: dict):
-    from .ids import hash_ids, salt_from_env
+    """(ids as published, node kinds) in node_idx order; with ``hash_ids`` the pseudonyms ingest stored."""
+    from .ids import hash_ids
 
-    nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
+    path = Path(plan["ingest_dir"]) / "nodes.parquet"
+    has_pseudonyms = "node_pseudonym" in pq.read_schema(path).names
+    columns = ["node_idx", "node_kind", "node_id"] + (["node_pseudonym"] if cfg.input.hash_ids and has_pseudonyms
+                                                      else [])
+    nodes = pq.read_table(path, columns=columns)
     idx = nodes.column("node_idx").to_numpy()
     if not np.array_equal(idx, np.arange(idx.size)):
         raise RuntimeError("node dictionary is not in node_idx order")
     node_ids = nodes.column("node_id").combine_chunks()
     if cfg.input.hash_ids:
-        node_ids = hash_ids(node_ids, salt_from_env(cfg.input.hash_salt_env))
+        key = salt_from_env(cfg.input.hash_salt_env)
+        stored = nodes.column("node_pseudonym").combine_chunks() if has_pseudonyms else None
+        # one id re-hashed tells whether the key is still the one ingest used (a resumed run may have another)
+        if stored is not None and (len(stored) == 0 or hash_ids(node_ids.slice(0, 1), key).equals(stored.slice(0, 1))):
+            node_ids = stored
+        else:
+            node_ids = hash_ids(node_ids, key)
     return node_ids, nodes.column("node_kind").combine_chunks()
 
 
@@ -304,7 +318,8 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     vectors = np.load(train["vectors"])
     alignment = {"aligned_to": None}
     if cfg.store.align and done_before is None:  # a retry is not aligned onto the version it published itself
-        vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors)
+        vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors,
+                                              cache_dir=previous_dir(plan))
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
     if holdout:

@@ -127,11 +127,16 @@ def evaluate_vectors(cfg, plan: dict, *, published_vectors: np.ndarray, eval_vec
                                           "n_classes": nc["n_classes"], "unmatched_label_rows": counts["unmatched"]}
         timings["node_classification"] = round(time.perf_counter() - t0, 3)
     t0 = time.perf_counter()
-    match = match_current(plan["store"], node_ids, node_kinds, published_vectors.shape[1])
+    # the current version's matched rows, read once per run and shared with warm start and alignment
+    from .pipeline import previous_dir
+
+    match = match_current(plan["store"], node_ids, node_kinds, published_vectors.shape[1],
+                          cache_dir=previous_dir(plan) if plan.get("ingest_dir") else None)
     if match is not None and match["new_rows"].size >= 20:
         k = min(10, match["new_rows"].size - 1)
-        overlap = neighbour_overlap(match["old_vectors"], published_vectors[match["new_rows"]], k=k,
-                                    sample=ev.drift_sample, seed=ev.seed)
+        rows = match["new_rows"]
+        shared = published_vectors if rows.size == published_vectors.shape[0] else published_vectors[rows]
+        overlap = neighbour_overlap(match["old_vectors"], shared, k=k, sample=ev.drift_sample, seed=ev.seed)
         metrics["neighbour_overlap"] = round(float(overlap), 6)
         metrics["neighbour_drift"] = round(1.0 - float(overlap), 6)
         metrics["drift_shared_nodes"] = int(match["new_rows"].size)

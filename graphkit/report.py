@@ -157,7 +157,16 @@ def _label_codes(labels):
     return codes, names
 
 
-def _projection_section(vectors, labels, seed=0) -> dict:
+def projected_rows(n_rows: int, seed: int = 0) -> np.ndarray:
+    """The rows (int64, ascending) the projection draws from ``n_rows`` vectors: all, or a seeded random subset of
+    ``MAX_PROJECTED_POINTS``; callers that read a version can fetch only these rows."""
+    rows = np.arange(n_rows)
+    if rows.size > MAX_PROJECTED_POINTS:
+        rows = np.sort(np.random.default_rng(seed).choice(rows.size, size=MAX_PROJECTED_POINTS, replace=False))
+    return rows
+
+
+def _projection_section(vectors, labels, seed=0, vectors_total=None) -> dict:
     section = {"heading": "Vectors in two dimensions (PCA)", "image": None, "notes": []}
     if vectors is None:
         section["notes"].append("No vectors given.")
@@ -170,10 +179,7 @@ def _projection_section(vectors, labels, seed=0) -> dict:
         raise ValueError(f"labels must have one entry per vector row ({x.shape[0]}), got {len(labels)}")
     from sklearn.decomposition import PCA
 
-    rng = np.random.default_rng(seed)
-    rows = np.arange(x.shape[0])
-    if rows.size > MAX_PROJECTED_POINTS:
-        rows = np.sort(rng.choice(rows.size, size=MAX_PROJECTED_POINTS, replace=False))
+    rows = projected_rows(x.shape[0], seed)
     sub = np.asarray(x[rows], dtype=np.float64)
     keep = np.all(np.isfinite(sub), axis=1)
     rows, sub = rows[keep], sub[keep]
@@ -207,7 +213,8 @@ def _projection_section(vectors, labels, seed=0) -> dict:
     ax.set_xlabel(f"component 1 ({ratio[0]:.1%} of variance)")
     ax.set_ylabel(f"component 2 ({ratio[1]:.1%} of variance)")
     section["image"] = _png(fig)
-    shown = f"{rows.size} of {x.shape[0]} vectors" if rows.size < x.shape[0] else f"all {x.shape[0]} vectors"
+    total = max(int(vectors_total or 0), x.shape[0])
+    shown = f"{rows.size} of {total} vectors" if rows.size < total else f"all {total} vectors"
     section["notes"].insert(0, f"Showing {shown}.")
     return section
 
@@ -277,7 +284,7 @@ def _timings_section(versions, timings) -> dict:
 
 # ---------------------------------------------------------------------------------------------------- entry point
 def write_report(out_html, *, versions, degrees=None, visit_counts=None, vectors=None, labels=None,
-                 title="Embedding store report") -> Path:
+                 title="Embedding store report", vectors_total=None) -> Path:
     """Write the store report as one self-contained HTML page.
 
     Parameters
@@ -298,6 +305,9 @@ def write_report(out_html, *, versions, degrees=None, visit_counts=None, vectors
         One label per row of ``vectors`` (``None`` for none) to colour the projection.
     title : str
         Page title and heading.
+    vectors_total : int, optional
+        When ``vectors`` holds only the rows :func:`projected_rows` picks from a larger version, that version's
+        row count (for the note under the projection).
 
     Returns
     -------
@@ -323,7 +333,7 @@ def write_report(out_html, *, versions, degrees=None, visit_counts=None, vectors
     sections = [
         _distribution_section(degrees, "Degree distribution", "degree", "nodes", "No degrees given."),
         _distribution_section(visit_counts, "Walk visits per node", "visits", "nodes", "No visit counts given."),
-        _projection_section(vectors, labels),
+        _projection_section(vectors, labels, vectors_total=vectors_total),
         _history_section(versions, metrics),
         _timings_section(versions, timings),
     ]

@@ -14,7 +14,7 @@ import pytest
 from conftest import graph_from_nx
 
 from graphkit import corpus as gc
-from graphkit.corpus import WalkCorpus, plan_shards, write_walk_corpus
+from graphkit.corpus import WalkCorpus, accumulate_visits, count_corpus_visits, plan_shards, write_walk_corpus
 from graphkit.errors import ConfigError
 from graphkit.graph import SparseGraph
 from graphkit.walks import count_restarts, count_visits, random_walks, walk_diagnostics
@@ -54,6 +54,12 @@ def read_all(corpus_dir, **kwargs):
     return np.concatenate(list(WalkCorpus(corpus_dir, **kwargs)))
 
 
+def bincount_visits(walks, n_nodes):
+    """Reference visit counts: numpy's bincount over every non-padding entry."""
+    flat = np.asarray(walks).reshape(-1)
+    return np.bincount(flat[flat >= 0], minlength=n_nodes).astype(np.int64)
+
+
 def file_ids(corpus_dir):
     """(inode, mtime_ns) of every shard file: changes whenever a file is rewritten (write + rename)."""
     return {p.name: (p.stat().st_ino, p.stat().st_mtime_ns) for p in sorted(corpus_dir.glob("shard-*"))}
@@ -76,6 +82,10 @@ def test_corpus_equals_random_walks(graph_dir, reference, tmp_path, n_shards, n_
     assert (len(corpus), corpus.n_walks, corpus.length, corpus.n_tokens, corpus.n_nodes) == (
         1200, 1200, LENGTH, n_tokens, 300)
     np.testing.assert_array_equal(corpus.visit_counts(), count_visits(reference, 300))
+    # the same counts from the corpus read back, whatever the number of shards and workers
+    np.testing.assert_array_equal(corpus.visit_counts(), bincount_visits(read_all(tmp_path / "c"), 300))
+    assert corpus.visit_counts().sum() == n_tokens
+    assert manifest["visits"] == "visits.npy" and not list((tmp_path / "c").glob("*.counts.npy"))
 
 
 @pytest.mark.parametrize("opts, n_shards, n_workers", [
@@ -131,8 +141,7 @@ def test_weighted_rerun_rewrites_only_incomplete_shards(weighted_dir, tmp_path):
     second = write_walk_corpus(weighted_dir, out, **opts)
     after = file_ids(out)
     assert second == first  # shard 1's counts and restarts come back, the others' are read from their footers
-    assert {n for n in after if after.get(n) != before.get(n)} == {
-        "shard-00001.parquet", "shard-00001.counts.npy", "shard-00003.parquet", "shard-00003.counts.npy"}
+    assert {n for n in after if after.get(n) != before.get(n)} == {"shard-00001.parquet", "shard-00003.parquet"}
     assert not list(out.glob("*.tmp-*")) and not (out / gc.ALIAS).exists()
     assert read_all(out).tobytes() == random_walks(SparseGraph.load(weighted_dir), PER_NODE, LENGTH, SEED, p=0.5,
                                                    q=2.0, dead_end="restart").tobytes()
@@ -179,6 +188,73 @@ def test_process_cluster_gives_same_walks(graph_dir, reference, tmp_path):
     assert os.getpid() not in pids and len(pids) == 2
     assert manifest["n_walks"] == 1200
     assert read_all(tmp_path / "c").tobytes() == reference.tobytes()
+    np.testing.assert_array_equal(WalkCorpus(tmp_path / "c").visit_counts(), bincount_visits(reference, 300))
+
+
+# ------------------------------------------------------------------------------------------ visit counts
+@pytest.mark.parametrize("jit", [True, False], ids=["jit", "python"])
+def test_accumulate_visits_adds_in_place_like_bincount(jit, monkeypatch):
+    if not jit:  # the kernel's own Python body, as NUMBA_DISABLE_JIT=1 would run it
+        monkeypatch.setattr(gc, "_accumulate_visits_kernel", gc._accumulate_visits_kernel.py_func)
+    rng = np.random.default_rng(5)
+    counts = np.zeros(50, dtype=np.int64)
+    buffer = counts.ctypes.data
+    chunks = [rng.integers(-1, 50, size=(k, 6)).astype(np.int32) for k in (0, 1, 17, 200)]
+    added = [accumulate_visits(c, counts) for c in chunks]
+    assert counts.ctypes.data == buffer  # accumulated in place, never reallocated
+    everything = np.concatenate([c.reshape(-1) for c in chunks])
+    np.testing.assert_array_equal(counts, bincount_visits(everything, 50))
+    assert added == [int((c >= 0).sum()) for c in chunks]
+    with pytest.raises(ConfigError, match=r"walks hold 2 node indices outside -1..49"):
+        accumulate_visits(np.array([[3, 50, -2, 4]], np.int32), counts)
+    with pytest.raises(ConfigError, match=r"counts must be a writeable C-contiguous int64"):
+        accumulate_visits(chunks[2], np.zeros(50, dtype=np.int32))
+
+
+def test_shards_write_nothing_proportional_to_the_graph(tmp_path):
+    # 3000 nodes and ten shards of 300 one-step-long walks: a dense count file per shard (the earlier layout) would
+    # be 24 kB per shard, four times the walks themselves
+    g = graph_from_nx(nx.gnm_random_graph(3000, 6000, seed=4))
+    g.save(tmp_path / "g")
+    out = tmp_path / "c"
+    manifest = write_walk_corpus(tmp_path / "g", out, per_node=1, length=2, seed=0, n_shards=10, n_workers=2)
+    for shard in manifest["shards"]:
+        files = list(out.glob(f"shard-{shard['index']:05d}*"))
+        assert [f.name for f in files] == [shard["file"]]
+        raw = 4 * shard["n_walks"] * 2  # int32 tokens of the shard
+        assert files[0].stat().st_size < raw + 4096 < 8 * g.n_nodes  # walks plus Parquet's fixed footer
+    # the one count file of the corpus: 8 bytes per node plus the .npy header
+    assert (out / "visits.npy").stat().st_size == 8 * g.n_nodes + 128
+    walks = read_all(out)
+    np.testing.assert_array_equal(WalkCorpus(out).visit_counts(), bincount_visits(walks, g.n_nodes))
+    one = count_corpus_visits(out, manifest["shards"], g.n_nodes, 2, threads=1)
+    np.testing.assert_array_equal(one, count_corpus_visits(out, manifest["shards"], g.n_nodes, 2, threads=3))
+
+
+def test_in_process_run_counts_while_walking(graph_dir, reference, tmp_path, monkeypatch):
+    # a fresh corpus on the in-process cluster needs no second pass over its shards
+    def no_pass(corpus_dir, shards, *args, **kwargs):
+        assert shards == [], f"shards counted again: {shards}"
+        return np.zeros(300, dtype=np.int64)
+
+    monkeypatch.setattr(gc, "count_corpus_visits", no_pass)
+    write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=5, n_workers=2)
+    np.testing.assert_array_equal(WalkCorpus(tmp_path / "c").visit_counts(), bincount_visits(reference, 300))
+    assert gc._POOLS == {}  # the run's arrays are released
+
+
+def test_visit_pool_drops_spoiled_and_doubled_arrays():
+    pool = gc._VisitPool(4, 3)
+    a, b, c = pool.arrays
+    a.counts[:] = [1, 0, 0, 0]; a.shards = [0]
+    b.counts[:] = [0, 5, 0, 0]; b.shards = [1]; b.spoiled = True  # part of a failed shard is in it
+    c.counts[:] = [0, 0, 2, 0]; c.shards = [2, 3]
+    total, covered = pool.fold()
+    np.testing.assert_array_equal(total, [1, 0, 2, 0])
+    assert covered == {0, 2, 3}  # shard 1 is left to the streaming pass
+    pool = gc._VisitPool(4, 2)
+    pool.arrays[0].shards, pool.arrays[1].shards = [0, 1], [1]  # shard 1 written twice: nothing is trusted
+    assert pool.fold() == (None, set())
 
 
 # ------------------------------------------------------------------------------------------ reruns and failures
@@ -186,15 +262,17 @@ def test_rerun_rewrites_only_incomplete_shards(graph_dir, reference, tmp_path):
     out = tmp_path / "c"
     first = write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=4)
     before = file_ids(out)
-    (out / "shard-00002.parquet").unlink()  # shard 2 is now incomplete (its counts file alone does not count)
+    (out / "shard-00002.parquet").unlink()  # shard 2 is now incomplete
     (out / "shard-00001.parquet.tmp-deadbeef").write_bytes(b"half a file from a crashed run")
     second = write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED)  # default n_shards
     after = file_ids(out)
     assert second == first
     assert set(after) == set(before)  # the stale temp file is gone, nothing else appeared
     changed = {name for name in after if after[name] != before[name]}
-    assert changed == {"shard-00002.parquet", "shard-00002.counts.npy"}
+    assert changed == {"shard-00002.parquet"}
     assert read_all(out).tobytes() == reference.tobytes()
+    # the kept shards' visits are counted once, not once per run
+    np.testing.assert_array_equal(WalkCorpus(out).visit_counts(), bincount_visits(reference, 300))
 
 
 def test_failed_shard_publishes_nothing(graph_dir, reference, tmp_path):
@@ -208,8 +286,7 @@ def test_failed_shard_publishes_nothing(graph_dir, reference, tmp_path):
         write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED)
     assert not (out / "manifest.json").exists()
     after = file_ids(out)
-    # only the failed shard's counts file may have been replaced (it is renamed first); shard 1 stays incomplete
-    assert {n for n in after if after[n] != before[n]} <= {"shard-00001.counts.npy"}
+    assert after == before  # shard 1 stays incomplete
     assert set(after) == set(before) and not list(out.glob("*.tmp-*"))
     with pytest.raises(ConfigError, match="manifest.json' not found"):
         WalkCorpus(out)
@@ -273,7 +350,7 @@ def test_parquet_layout_and_chunks(graph_dir, reference, tmp_path, monkeypatch):
     col = pf.metadata.row_group(0).column(0)
     assert col.compression == "ZSTD"
     assert not any("DICTIONARY" in e for e in col.encodings)
-    assert np.load(out / "shard-00001.counts.npy").dtype == np.int64
+    assert np.load(out / "visits.npy").dtype == np.int64
 
     corpus = WalkCorpus(out, chunk_walks=100)
     for _ in range(2):  # re-iterable

@@ -97,9 +97,11 @@ def test_process_cluster_corpus_is_byte_identical_to_single_process(cluster, dem
     assert got.dtype == np.int32 and got.shape == expected.shape
     assert np.array_equal(got, expected)
     assert remote["n_tokens"] == local["n_tokens"] == int(np.count_nonzero(expected >= 0))
-    # same bytes on disk as the in-process (thread) cluster: Parquet shards and visit-count files alike
-    assert len(_digests(tmp_path / "remote")) == 8
+    # same bytes on disk as the in-process (thread) cluster: the Parquet shards (no count file per shard), and the
+    # visit counts, counted by one pass over the shards here and while walking in the in-process run
+    assert len(_digests(tmp_path / "remote")) == 4
     assert _digests(tmp_path / "remote") == _digests(tmp_path / "local")
+    assert (tmp_path / "remote" / "visits.npy").read_bytes() == (tmp_path / "local" / "visits.npy").read_bytes()
 
     # the 4 shards of the remote run were computed by both worker processes of the cluster
     assert len(sizes.ran_on) == 4 and all(k.startswith("write_shard-") for k in sizes.ran_on)

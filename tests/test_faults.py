@@ -296,6 +296,57 @@ def test_hashed_ids_and_permissions(published, tmp_path):
         assert not mode & 0o022, f"{p} is group/world writable: {oct(mode)}"
 
 
+@pytest.mark.parametrize("key", [b"a-secret-key-of-the-team-0001", b"k" * 64, b"long-" * 40],
+                         ids=["short key", "block-sized key", "key longer than a block"])
+def test_hash_ids_is_hmac_sha256(key, monkeypatch):
+    """Pseudonyms equal the standard library's HMAC-SHA256 (RFC 2104) of each id's text, for strings (non-ASCII,
+    empty, longer than a SHA-256 block), integers and nulls, across chunk boundaries."""
+    from graphkit import ids as gi
+
+    monkeypatch.setattr(gi, "HASH_CHUNK", 4)
+    texts = ["acct-1", "", "Zoë-Ω-客户", "x" * 55, "y" * 56, "z" * 64, "w" * 200, None, "acct-2"]
+    got = gi.hash_ids(pa.chunked_array([texts[:3], texts[3:]]), key)
+    want = [None if t is None else hmac.new(key, t.encode(), hashlib.sha256).hexdigest() for t in texts]
+    assert got.type == pa.string() and got.to_pylist() == want
+    numbers = [0, -5, 17, 2**62, None, 123456789]
+    want = [None if v is None else hmac.new(key, str(v).encode(), hashlib.sha256).hexdigest() for v in numbers]
+    assert gi.hash_ids(pa.array(numbers, pa.int64()), key).to_pylist() == want
+    assert gi.hash_ids(numbers, key).to_pylist() == want  # a plain list: str(id) of each
+    assert gi.hash_ids(pa.array([], pa.string()), key).to_pylist() == []
+    assert gi.hash_ids(pa.array(["a"]).slice(0, 1), key).to_pylist() == [hmac.new(key, b"a", "sha256").hexdigest()]
+
+
+def test_ids_are_hashed_once_at_ingest(tmp_path, monkeypatch):
+    """Ingest stores the pseudonyms in the node dictionary; the stages after it read them instead of hashing all
+    ids again (one id is re-hashed to check the key), and a changed key makes them hash afresh."""
+    from types import SimpleNamespace
+
+    from graphkit import ids as gi
+    from graphkit.ingest import EdgeTable, ingest_tables
+    from graphkit.pipeline import _published_ids
+
+    key = "a-secret-key-of-the-team-0001"
+    pq.write_table(pa.table({"s": ["a", "b", "c", "d"], "t": ["b", "c", "a", "é"]}), tmp_path / "e.parquet")
+    ingest_tables([EdgeTable(str(tmp_path / "e.parquet"), "s", "t")], tmp_path / "ing", hash_key=key.encode())
+    nodes = pq.read_table(tmp_path / "ing" / "nodes.parquet")
+    want = [hmac.new(key.encode(), v.encode(), hashlib.sha256).hexdigest() for v in nodes.column("node_id").to_pylist()]
+    assert nodes.column("node_pseudonym").to_pylist() == want
+    hashed = []
+    real = gi.hash_ids
+    monkeypatch.setattr(gi, "hash_ids", lambda ids, k: hashed.append(len(ids)) or real(ids, k))
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", key)
+    cfg = SimpleNamespace(input=SimpleNamespace(hash_ids=True, hash_salt_env="GRAPHKIT_ID_SALT"))
+    ids, kinds = _published_ids(cfg, {"ingest_dir": str(tmp_path / "ing")})
+    assert ids.to_pylist() == want and kinds.to_pylist() == ["node"] * 5
+    assert hashed == [1]  # the key check only
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", "another-key-of-the-team-0002")
+    ids, _ = _published_ids(cfg, {"ingest_dir": str(tmp_path / "ing")})
+    assert hashed == [1, 1, 5]
+    assert ids.to_pylist() == real(nodes.column("node_id"), b"another-key-of-the-team-0002").to_pylist()
+    cfg.input.hash_ids = False
+    assert _published_ids(cfg, {"ingest_dir": str(tmp_path / "ing")})[0].to_pylist() == ["a", "b", "c", "d", "é"]
+
+
 def _descendants(proc) -> dict:
     """pid -> (process, command line) of every live descendant."""
     import psutil

@@ -156,3 +156,29 @@ def test_adjacency_matches_scipy_csr_when_duckdb_runs_in_parallel(tmp_path):
     np.testing.assert_array_equal(graph.indptr, ref.indptr)
     np.testing.assert_array_equal(graph.indices, ref.indices)
     np.testing.assert_allclose(graph.weights, ref.data, rtol=1e-5)
+
+
+def test_rows_are_checked_in_one_scan_per_run(tmp_path, monkeypatch):
+    """The preflight before Prefect, the flow's own preflight and the ingest: one scan of the rows for checks;
+    a changed file is checked again, and a bad one still fails at the preflight."""
+    from graphkit import ingest as gi
+    from graphkit.ingest import EdgeTable, ingest_tables, validate_edge_tables
+
+    monkeypatch.setattr(gi, "_CHECKED", {})
+    scans = []
+    check = gi._check_rows
+    monkeypatch.setattr(gi, "_check_rows", lambda *a: scans.append(1) or check(*a))
+    path = _write(tmp_path / "t.parquet", a=pa.array(["x", "y", "z", "x"]), b=pa.array(["y", "z", "x", "x"]))
+    tables = [EdgeTable(path, "a", "b")]
+    first = validate_edge_tables(tables)
+    assert validate_edge_tables(tables) == first and len(scans) == 1
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", GraphDataWarning)
+        info = ingest_tables(tables, tmp_path / "out")
+    assert len(scans) == 1
+    assert (info["counts"]["rows"], info["counts"]["dropped_self_loops"], info["counts"]["edges"]) == (4, 1, 3)
+    assert validate_edge_tables(tables, window={"since": None, "until": None}) == first  # the same open window
+    _write(tmp_path / "t.parquet", a=pa.array(["x", None]), b=pa.array(["y", "z"]))
+    with pytest.raises(EdgeTableError, match=r"1 of 2 rows have a null id"):
+        validate_edge_tables(tables)
+    assert len(scans) == 2

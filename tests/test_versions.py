@@ -110,11 +110,113 @@ def test_rotated_copy_aligns_back(tmp_path):
     assert info["residual"] < 1e-5 and info["residual_unaligned"] > 0.5
 
 
-def test_refresh_records_alignment_residual(tmp_path):
+def test_blockwise_alignment_equals_scipy_procrustes(tmp_path, monkeypatch):
+    """Alignment block by block (small blocks here) equals scipy.linalg.orthogonal_procrustes on the shared rows,
+    applied to every row in float64, within float32 tolerance; the residuals equal graphkit.evaluate's."""
+    from scipy.linalg import orthogonal_procrustes
+
+    from graphkit import store as gs
+    from graphkit.evaluate import procrustes_residual
+
+    monkeypatch.setattr(gs, "ALIGN_BLOCK_BYTES", 3 * 8 * 16 * 300)  # blocks of 300 rows
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(2000, 16)).astype(np.float32)
+    ids = list(range(2000))
+    publish(tmp_path, ids, x, kinds=pa.array(["account"] * 2000))
+    rot = special_ortho_group.rvs(16, random_state=9)
+    new_ids = ids[100:] + list(range(5000, 5300))  # 100 gone, 300 new
+    y = (np.vstack([x[100:], rng.normal(size=(300, 16))]) @ rot
+         + rng.normal(scale=0.05, size=(2200, 16))).astype(np.float32)  # rotated, plus noise
+    y_before = y.copy()
+    aligned, info = align_to_current(tmp_path, pa.array(new_ids), pa.array(["account"] * 2200), y)
+    assert aligned is y  # rotated in place
+    r_scipy, _ = orthogonal_procrustes(y_before[:1900].astype(np.float64), x[100:].astype(np.float64))
+    np.testing.assert_allclose(aligned, (y_before.astype(np.float64) @ r_scipy).astype(np.float32), atol=2e-5)
+    ref = procrustes_residual(x[100:], y_before[:1900])
+    assert info["shared_nodes"] == 1900
+    assert info["residual"] == pytest.approx(ref["residual"], rel=1e-9)
+    assert info["residual_unaligned"] == pytest.approx(ref["residual_unaligned"], rel=1e-9)
+    # other node kinds, or ids of another type, share nothing
+    _, other = align_to_current(tmp_path, pa.array(new_ids), pa.array(["device"] * 2200), y_before.copy())
+    assert other["aligned_to"] is None and other["shared_nodes"] == 0
+    _, other = align_to_current(tmp_path, pa.array([str(i) for i in new_ids]), pa.array(["account"] * 2200),
+                                y_before.copy())
+    assert other == {"aligned_to": None, "shared_nodes": 0, "residual": None, "residual_unaligned": None}
+
+
+def test_previous_version_is_read_once_per_run(tmp_path, monkeypatch):
+    """With a cache folder the first consumer reads the previous version (key columns, then the matched rows'
+    vectors) into a memory-mapped float32 file; the others reuse it; a newly published version is read afresh."""
+    from graphkit import store as gs
+
+    rng = np.random.default_rng(3)
+    x = rng.normal(size=(300, 8)).astype(np.float32)
+    ids = [f"n{i}" for i in range(300)]
+    publish(tmp_path, ids, x, provisional=np.arange(300) == 7)  # provisional rows are never matched
+    new_ids = pa.array(ids[::-1])
+    kinds = pa.array(["node"] * 300)
+    cache = tmp_path / "work" / "ingest-x" / "previous"
+    first = gs.match_current(tmp_path, new_ids, kinds, 8, cache_dir=cache)
+    assert isinstance(first["old_vectors"], np.memmap) and first["old_vectors"].dtype == np.float32
+    expected_rows = np.array([r for r in range(300) if r != 292])  # new row 292 is old row 7
+    np.testing.assert_array_equal(first["new_rows"], expected_rows)
+    np.testing.assert_array_equal(first["old_vectors"], x[299 - expected_rows])
+    calls = []
+    monkeypatch.setattr(gs, "_matched_rows", lambda *a: calls.append(a))
+    second = gs.match_current(tmp_path, new_ids, kinds, 8, cache_dir=cache)
+    assert calls == [] and second["version"] == 1
+    np.testing.assert_array_equal(second["old_vectors"], first["old_vectors"])
+    assert gs.match_current(tmp_path, new_ids, kinds, 4, cache_dir=cache) is None  # another dimension
+    monkeypatch.undo()
+    publish(tmp_path, ids, 2 * x)
+    third = gs.match_current(tmp_path, new_ids, kinds, 8, cache_dir=cache)
+    assert third["version"] == 2 and third["new_rows"].size == 300
+    np.testing.assert_array_equal(third["old_vectors"], 2 * x[::-1])
+    assert sorted(p.name for p in cache.iterdir()) == ["v000001", "v000002"]
+
+
+@pytest.mark.slow
+def test_alignment_allocates_no_float64_copy(tmp_path):
+    """Peak memory traced by tracemalloc while aligning 200k x 64 (51 MB of float32) stays below one matrix (the
+    previous version's matched rows) plus one block and the row indices; a float64 copy alone would be 102 MB."""
+    import tracemalloc
+
+    from graphkit import store as gs
+
+    n, dim = 200_000, 64
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((n, dim), dtype=np.float32)
+    ids = pa.array(np.arange(n))
+    publish(tmp_path, ids, x)
+    y = x[::-1].copy()
+    new_ids = pa.array(np.arange(n)[::-1].copy())
+    kinds = pa.array(["node"] * n)
+    tracemalloc.start()
+    try:
+        aligned, info = gs.align_to_current(tmp_path, new_ids, kinds, y)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert info["shared_nodes"] == n and info["residual"] < 1e-5
+    np.testing.assert_allclose(aligned, x[::-1], atol=1e-4)
+    matrix, indices = n * dim * 4, 4 * n * 8  # new_rows, old_rows, their sort order, the sorted rows
+    assert peak < matrix + gs.ALIGN_BLOCK_BYTES + indices, (peak, matrix)
+
+
+def test_refresh_records_alignment_residual(tmp_path, monkeypatch):
+    from graphkit import store as gs
+
     args = [f'store.path="{tmp_path}"', *FAST_DEMO]
     graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args))
-    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args + ["walks.seed=11"]))
+    reads = []
+    join = gs._matched_rows
+    monkeypatch.setattr(gs, "_matched_rows", lambda *a: reads.append(a[0]) or join(*a))
+    # warm start, drift and alignment all use the current version: it is read once
+    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args + ["walks.seed=11",
+                                                                              "train.warm_start=true"]))
+    assert len(reads) == 1 and reads[0].name == "embeddings.parquet"
     row = list_versions(tmp_path)[-1]
+    assert row["counts"]["warm_started_nodes"] > 2900 and "neighbour_drift" in row["metrics"]
     al = row["params"]["lineage"]["alignment"]
     assert al["aligned_to"] == 1 and al["shared_nodes"] > 2900
     assert 0 < row["metrics"]["align_residual"] < al["residual_unaligned"]
@@ -308,3 +410,34 @@ def test_a_finished_refresh_removes_abandoned_stage_folders(tmp_path):
                       [f'store.path="{tmp_path}"', *FAST_DEMO, "store.keep_work_days=0"])
     graphkit.refresh(cfg)
     assert not recent.exists()
+
+
+def test_report_reads_only_the_projected_rows(tmp_path, monkeypatch):
+    """`graphkit report` fetches the seeded subset of rows the projection draws, row group by row group, and
+    draws the same 2-D view as a report given the whole version."""
+    import re
+
+    from graphkit import report as gr
+    from graphkit import store as gs
+    from graphkit.cli import main
+    from graphkit.store import save_diagnostics
+
+    monkeypatch.setattr(gr, "MAX_PROJECTED_POINTS", 500)
+    rng = np.random.default_rng(2)
+    n = 1800
+    x = rng.normal(size=(n, 8)).astype(np.float32)
+    labels = np.array([f"group-{i % 3}" for i in range(n)], dtype=object)
+    version = publish(tmp_path, list(range(n)), x)
+    save_diagnostics(tmp_path, version, degrees=np.ones(n), labels=labels)
+    read_whole = []
+    monkeypatch.setattr(gs, "read_version", lambda *a, **k: read_whole.append(a))
+    monkeypatch.setattr(gs, "read_table", lambda *a, **k: read_whole.append(a))
+    assert main(["report", str(tmp_path), "--out", str(tmp_path / "r.html")]) == 0
+    assert read_whole == []
+    html = (tmp_path / "r.html").read_text()
+    assert "Showing 500 of 1800 vectors." in html
+    full = gr.write_report(tmp_path / "full.html", versions=list_versions(tmp_path), degrees=np.ones(n),
+                           vectors=x, labels=list(labels), title="t")
+    image = re.compile(r'<img src="data:image/png;base64,([A-Za-z0-9+/=]+)"')
+    projection = 1  # degrees first; no visit counts
+    assert image.findall(html)[projection] == image.findall(full.read_text())[projection]
