@@ -286,11 +286,12 @@ def test_sql_views_macros_and_examples(tmp_path):
     con.close()
 
 
-def test_feature_export(tmp_path):
+def test_feature_export(tmp_path, tmp_path_factory):
     publish(tmp_path, pa.array([10, 20, 30], pa.int64()), np.arange(12).reshape(3, 4))
-    ent = tmp_path / "customers.parquet"
+    exports = tmp_path_factory.mktemp("exports")  # exports go outside the store
+    ent = exports / "customers.parquet"
     pq.write_table(pa.table({"customer": ["20", "99", "10", None], "plan": ["a", "b", "c", "d"]}), ent)
-    out = tmp_path / "features.parquet"
+    out = exports / "features.parquet"
     r = subprocess.run([sys.executable, "-m", "graphkit.cli", "features", str(tmp_path), "--entities", str(ent),
                         "--on", "customer", "--out", str(out)], capture_output=True, text=True, cwd=ROOT)
     assert r.returncode == 0, r.stderr
@@ -299,9 +300,9 @@ def test_feature_export(tmp_path):
     assert t.column_names == ["customer", "plan", "emb_000", "emb_001", "emb_002", "emb_003"]
     assert t.column("plan").to_pylist() == ["a", "b", "c", "d"]  # order and rows kept
     assert t.column("emb_000").to_pylist() == [4.0, None, 0.0, None]
-    info = export_features(tmp_path, ent, "customer", tmp_path / "f.csv", fmt="csv")
+    info = export_features(tmp_path, ent, "customer", exports / "f.csv", fmt="csv")
     assert info["without_vector"] == 2
-    assert (tmp_path / "f.csv").read_text().splitlines()[0] == "customer,plan,emb_000,emb_001,emb_002,emb_003"
+    assert (exports / "f.csv").read_text().splitlines()[0] == "customer,plan,emb_000,emb_001,emb_002,emb_003"
     bad = subprocess.run([sys.executable, "-m", "graphkit.cli", "features", str(tmp_path), "--entities", str(ent),
                           "--on", "custmer", "--out", str(out)], capture_output=True, text=True, cwd=ROOT)
     assert bad.returncode == 2 and "did you mean 'customer'" in bad.stderr
@@ -420,7 +421,6 @@ def test_report_reads_only_the_projected_rows(tmp_path, monkeypatch):
     from graphkit import report as gr
     from graphkit import store as gs
     from graphkit.cli import main
-    from graphkit.store import save_diagnostics
 
     monkeypatch.setattr(gr, "MAX_PROJECTED_POINTS", 500)
     rng = np.random.default_rng(2)
@@ -428,7 +428,8 @@ def test_report_reads_only_the_projected_rows(tmp_path, monkeypatch):
     x = rng.normal(size=(n, 8)).astype(np.float32)
     labels = np.array([f"group-{i % 3}" for i in range(n)], dtype=object)
     version = publish(tmp_path, list(range(n)), x)
-    save_diagnostics(tmp_path, version, degrees=np.ones(n), labels=labels)
+    np.savez_compressed(tmp_path / "versions" / f"{version:06d}" / "diagnostics.npz",
+                        **gs.diagnostic_arrays(degrees=np.ones(n), labels=labels))
     read_whole = []
     monkeypatch.setattr(gs, "read_version", lambda *a, **k: read_whole.append(a))
     monkeypatch.setattr(gs, "read_table", lambda *a, **k: read_whole.append(a))
