@@ -384,6 +384,24 @@ def test_foldin_without_new_nodes_publishes_nothing(store, capsys):
     assert not any((store / "work").iterdir())  # the fold-in's ingest folder is removed
 
 
+def test_foldin_with_new_nodes_but_no_known_neighbour_publishes_nothing(store, tmp_path, capsys):
+    demo = pq.read_table(ROOT / "sample_parquet" / "transfers.parquet")
+    extra = pa.table({"sender": ["acct-new-1"], "receiver": ["acct-new-2"], "amount": [5.0],
+                      "sent_at": demo.column("sent_at").slice(0, 1)}).cast(demo.schema)
+    pq.write_table(pa.concat_tables([demo, extra]), tmp_path / "edges.parquet")
+    config = tmp_path / "c.toml"
+    config.write_text(TABLE_CONFIG.format(edges="edges.parquet", store=store)
+                      .replace('weight = "amount"', 'weight = "amount"\ndrop_null_ids = true'))
+    before = digest_tree(store)
+    code, out, err, _ = run(capsys, "foldin", config)
+    assert code == 0, err
+    assert out.strip() == "2 new nodes, none with a known neighbour, since version 1: nothing published"
+    assert [v["version"] for v in list_versions(store)] == [1]
+    after = digest_tree(store)
+    assert {k: v for k, v in after.items() if not k.startswith("work")} == \
+        {k: v for k, v in before.items() if not k.startswith("work")}
+
+
 def test_export_csv_is_csv_with_one_column_per_dimension(store, tmp_path, capsys):
     """Reference: pyarrow's CSV reader reads back exactly the float32 vectors of the Parquet export."""
     code, _, err, _ = run(capsys, "export", store, "--out", tmp_path / "new" / "deeper" / "v.csv")
