@@ -213,16 +213,16 @@ def cmd_report(args) -> int:
     from .store import list_versions, load_diagnostics, read_version
 
     rows = list_versions(args.store)
+    if args.out:  # checked before the vectors are read
+        out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
+    else:
+        out = Path(args.store) / "reports" / "report.html"
     current = next((r for r in rows if r["is_current"]), None)
     vectors, diag = None, {}
     if current is not None:
         _, vectors = read_version(args.store)
         diag = load_diagnostics(args.store, current["version"])
     labels = diag.get("labels")
-    if args.out:
-        out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
-    else:
-        out = Path(args.store) / "reports" / "report.html"
     write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
                  vectors=vectors, labels=None if labels is None else [x or None for x in labels.tolist()],
                  title=f"graphkit store {Path(args.store).resolve().name}"
@@ -254,8 +254,8 @@ def cmd_foldin(args) -> int:
     cfg = load_config(args.config, args.set)
     result = fold_in(cfg)
     if result["version"] is None:
-        what = ("no new nodes" if result["foldin_candidates"] == 0 else
-                f"{result['foldin_candidates']} new nodes, none with a known neighbour,")
+        n = result["foldin_candidates"]
+        what = "no new nodes" if n == 0 else f"{n} new node{'s' if n > 1 else ''}, none with a known neighbour,"
         print(f"{what} since version {result['base_version']}: nothing published")
         return 0
     print(f"published version {result['version']}: version {result['base_version']} plus "
@@ -347,7 +347,7 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--json", action="store_true", help="print a JSON array, one object per version")
     v.set_defaults(func=cmd_versions)
 
-    e = sub.add_parser("export", help="write a version's vectors to a Parquet file")
+    e = sub.add_parser("export", help="write a version's vectors to a Parquet or CSV file")
     e.add_argument("store")
     e.add_argument("--out", required=True, help="output file: .parquet (a vector column) or .csv (one column per "
                                                  "dimension)")
