@@ -91,6 +91,8 @@ def cmd_versions(args) -> int:
     return 0
 
 
+#: Folders of a store that only the store writes (an export may not land there).
+STORE_FOLDERS = ("versions", "work", "reports")
 #: Output formats of ``export`` and ``features`` by the file's extension.
 OUT_FORMATS = {".parquet": "parquet", ".csv": "csv"}
 
@@ -106,10 +108,11 @@ def output_file(out, *, formats=OUT_FORMATS, store=None, option: str = "--out") 
         raise InputError(f"{option} {out}: unknown file extension {out.suffix or '(none)'!r}; use one of {known}")
     if out.is_dir():
         raise InputError(f"{option} {out}: is a folder; give a file name")
-    if store is not None:
+    if store is not None:  # never into the folders the store manages (the catalog and lock are neither format)
         root, target = Path(store).resolve(), out.resolve()
-        if target == root or root in target.parents:
-            raise InputError(f"{option} {out}: inside the store {store}; write exports elsewhere")
+        if root in target.parents and target.relative_to(root).parts[0] in STORE_FOLDERS:
+            raise InputError(f"{option} {out}: would write among the store's own files in {store}; write the "
+                             "export elsewhere")
     probe = out.absolute().parent
     while not probe.exists() and not probe.is_symlink():
         probe = probe.parent
