@@ -91,6 +91,8 @@ def cmd_versions(args) -> int:
     return 0
 
 
+#: Folders of a store that only the store writes (an export may not land there).
+STORE_FOLDERS = ("versions", "work", "reports")
 #: Output formats of ``export`` and ``features`` by the file's extension.
 OUT_FORMATS = {".parquet": "parquet", ".csv": "csv"}
 
@@ -106,10 +108,11 @@ def output_file(out, *, formats=OUT_FORMATS, store=None, option: str = "--out") 
         raise InputError(f"{option} {out}: unknown file extension {out.suffix or '(none)'!r}; use one of {known}")
     if out.is_dir():
         raise InputError(f"{option} {out}: is a folder; give a file name")
-    if store is not None:
+    if store is not None:  # never into the folders the store manages (the catalog and lock are neither format)
         root, target = Path(store).resolve(), out.resolve()
-        if target == root or root in target.parents:
-            raise InputError(f"{option} {out}: inside the store {store}; write exports elsewhere")
+        if root in target.parents and target.relative_to(root).parts[0] in STORE_FOLDERS:
+            raise InputError(f"{option} {out}: would write among the store's own files in {store}; write the "
+                             "export elsewhere")
     probe = out.absolute().parent
     while not probe.exists() and not probe.is_symlink():
         probe = probe.parent
@@ -216,6 +219,10 @@ def cmd_report(args) -> int:
     from .store import _gather_rows, list_versions, load_diagnostics
 
     rows = list_versions(args.store)
+    if args.out:  # checked before the vectors are read
+        out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
+    else:
+        out = Path(args.store) / "reports" / "report.html"
     current = next((r for r in rows if r["is_current"]), None)
     vectors, diag, labels, total = None, {}, None, None
     if current is not None:
@@ -230,10 +237,6 @@ def cmd_report(args) -> int:
         diag = load_diagnostics(args.store, current["version"])
         if diag.get("labels") is not None and len(diag["labels"]) == total:
             labels = [x or None for x in diag["labels"][picked].tolist()]
-    if args.out:
-        out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
-    else:
-        out = Path(args.store) / "reports" / "report.html"
     write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
                  vectors=vectors, labels=labels, vectors_total=total,
                  title=f"graphkit store {Path(args.store).resolve().name}"
@@ -265,8 +268,8 @@ def cmd_foldin(args) -> int:
     cfg = load_config(args.config, args.set)
     result = fold_in(cfg)
     if result["version"] is None:
-        what = ("no new nodes" if result["foldin_candidates"] == 0 else
-                f"{result['foldin_candidates']} new nodes, none with a known neighbour,")
+        n = result["foldin_candidates"]
+        what = "no new nodes" if n == 0 else f"{n} new node{'s' if n > 1 else ''}, none with a known neighbour,"
         print(f"{what} since version {result['base_version']}: nothing published")
         return 0
     print(f"published version {result['version']}: version {result['base_version']} plus "
@@ -383,7 +386,7 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--json", action="store_true", help="print a JSON array, one object per version")
     v.set_defaults(func=cmd_versions)
 
-    e = sub.add_parser("export", help="write a version's vectors to a Parquet file")
+    e = sub.add_parser("export", help="write a version's vectors to a Parquet or CSV file")
     e.add_argument("store")
     e.add_argument("--out", required=True, help="output file: .parquet (a vector column) or .csv (one column per "
                                                  "dimension)")

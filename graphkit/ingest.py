@@ -90,14 +90,14 @@ def _file_columns(f: Path) -> dict[str, str]:
             rel = con.read_csv(str(f), header=True)
             cols = dict(zip(rel.columns, (str(t) for t in rel.types)))
         except duckdb.Error as exc:
-            raise EdgeTableError(f"{f}: not a readable CSV file ({str(exc).splitlines()[0]})") from None
+            raise EdgeTableError(f"{f}: not a readable CSV file ({_first_line(exc)})") from None
         finally:
             con.close()
         return cols
     try:
         schema = pq.read_metadata(f).schema.to_arrow_schema()
     except (pa.ArrowInvalid, OSError) as exc:
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        reason = _first_line(exc)
         raise EdgeTableError(f"{f}: not a readable Parquet file ({reason})") from None
     cols = {name: _arrow_type_name(schema.field(name).type) for name in schema.names}
     for part in f.parts[:-1]:  # hive partition folders (day=2026-11-30/) add columns
@@ -250,6 +250,15 @@ def _format_rows(rows, limit: int = 300) -> str:
     return text if len(text) <= limit else text[:limit] + "...]"
 
 
+def _first_line(exc) -> str:
+    """The first line of an exception's message (its class name when the message is empty); never raises."""
+    try:
+        text = str(exc).strip()
+    except Exception:  # noqa: BLE001
+        text = ""
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
 def _safe_repr(value) -> str:
     try:
         return repr(value)
@@ -333,7 +342,7 @@ def validate_edge_tables(tables, *, drop_null_ids: bool = False, window: dict | 
         con.execute("create temp view windowed as " + _inline_params(sql, _window_params(window, False)))
         n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where, window)
     except duckdb.Error as exc:
-        raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
+        raise EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})") from None
     finally:
         con.close()
     counts = {"rows": n_rows, "outside_window": n_outside, "null_ids": n_null, "self_loops": n_loops}
@@ -448,7 +457,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         sql = load_sql("edge_index")  # a relation, not a DB-API result: streamed without an extra copy
         indptr, indices, wts = _fetch_adjacency(con.sql(sql, params=bind(sql, params)), n_nodes, n_entries, weighted)
     except duckdb.Error as exc:
-        raise EdgeTableError(f"{where}: cannot read the edge table ({str(exc).splitlines()[0]})") from None
+        raise EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})") from None
     finally:
         con.close()
     graph = SparseGraph.from_arrays(indptr, indices, wts, directed=directed)

@@ -54,7 +54,7 @@ def check_labels_table(path: str, *, id_column: str, label_column: str, kind: st
         schema = pq.read_schema(files[0])
     except (OSError, pa.ArrowException) as exc:
         raise EdgeTableError(f"{files[0]}: [evaluate] labels is not a readable Parquet file "
-                             f"({str(exc).splitlines()[0]})") from None
+                             f"({(str(exc).strip() or type(exc).__name__).splitlines()[0]})") from None
     for key, col in (("label_id_column", id_column), ("label_column", label_column)):
         if col not in schema.names:
             raise EdgeTableError(f"{files[0]}: no column {col!r} for [evaluate] {key} "

@@ -310,7 +310,10 @@ def _entities(tmp_path, store) -> Path:
 BAD_COMMANDS = {
     "export_unknown_extension": (["export", "{store}", "--out", "{tmp}/v.txt"], r"unknown file extension '\.txt'"),
     "export_no_extension": (["export", "{store}", "--out", "{tmp}/vectors"], r"unknown file extension"),
-    "export_into_store": (["export", "{store}", "--out", "{store}/versions/x.parquet"], r"inside the store"),
+    "export_into_store": (["export", "{store}", "--out", "{store}/versions/x.parquet"],
+                          r"would write among the store's own files"),
+    "export_over_a_version": (["export", "{store}", "--out", "{store}/versions/000001/embeddings.parquet"],
+                              r"would write among the store's own files"),
     "export_under_a_file": (["export", "{store}", "--out", "{tmp}/customers.parquet/v.parquet"],
                             r"cannot create the folder .* is a file"),
     "export_onto_a_folder": (["export", "{store}", "--out", "{tmp}/folder.parquet"], r"is a folder"),
@@ -331,7 +334,7 @@ BAD_COMMANDS = {
     "features_bad_csv_column": (["features", "{store}", "--entities", "{tmp}/people.csv", "--on", "id",
                                  "--out", "{tmp}/f.csv"], r"people\.csv: no column 'id' for --on"),
     "features_into_store": (["features", "{store}", "--entities", "{tmp}/customers.parquet", "--on", "customer",
-                             "--out", "{store}/f.parquet"], r"inside the store"),
+                             "--out", "{store}/work/f.parquet"], r"would write among the store's own files"),
     "report_unknown_extension": (["report", "{store}", "--out", "{tmp}/r.pdf"], r"unknown file extension '\.pdf'"),
     "report_under_a_file": (["report", "{store}", "--out", "{tmp}/customers.parquet/r.html"], r"is a file"),
     "similar_unknown_node": (["similar", "{store}", "acct-nobody"], r"node id 'acct-nobody' is not in"),
@@ -382,6 +385,24 @@ def test_foldin_without_new_nodes_publishes_nothing(store, capsys):
     assert {k: v for k, v in after.items() if not k.startswith("work")} == \
         {k: v for k, v in before.items() if not k.startswith("work")}
     assert not any((store / "work").iterdir())  # the fold-in's ingest folder is removed
+
+
+def test_foldin_with_new_nodes_but_no_known_neighbour_publishes_nothing(store, tmp_path, capsys):
+    demo = pq.read_table(ROOT / "sample_parquet" / "transfers.parquet")
+    extra = pa.table({"sender": ["acct-new-1"], "receiver": ["acct-new-2"], "amount": [5.0],
+                      "sent_at": demo.column("sent_at").slice(0, 1)}).cast(demo.schema)
+    pq.write_table(pa.concat_tables([demo, extra]), tmp_path / "edges.parquet")
+    config = tmp_path / "c.toml"
+    config.write_text(TABLE_CONFIG.format(edges="edges.parquet", store=store)
+                      .replace('weight = "amount"', 'weight = "amount"\ndrop_null_ids = true'))
+    before = digest_tree(store)
+    code, out, err, _ = run(capsys, "foldin", config)
+    assert code == 0, err
+    assert out.strip() == "2 new nodes, none with a known neighbour, since version 1: nothing published"
+    assert [v["version"] for v in list_versions(store)] == [1]
+    after = digest_tree(store)
+    assert {k: v for k, v in after.items() if not k.startswith("work")} == \
+        {k: v for k, v in before.items() if not k.startswith("work")}
 
 
 def test_export_csv_is_csv_with_one_column_per_dimension(store, tmp_path, capsys):

@@ -182,3 +182,41 @@ def test_rows_are_checked_in_one_scan_per_run(tmp_path, monkeypatch):
     with pytest.raises(EdgeTableError, match=r"1 of 2 rows have a null id"):
         validate_edge_tables(tables)
     assert len(scans) == 2
+
+
+@pytest.mark.parametrize("fmt", ["parquet", "csv"])
+def test_nan_weight_is_reported_with_its_row(tmp_path, fmt):
+    """A NaN weight in Parquet once crashed the message (DuckDB pruned the row group by its min/max statistics,
+    which leave NaN out, so the example query found no row): the message must give the count and the row."""
+    t = pa.table({"s": ["a", "b"], "d": ["b", "c"], "w": [1.0, float("nan")]})
+    path = tmp_path / f"t.{fmt}"
+    if fmt == "parquet":
+        pq.write_table(t, path)
+    else:
+        path.write_text("s,d,w\na,b,1.0\nb,c,nan\n")
+    with pytest.raises(EdgeTableError, match=r"1 of 2 rows have a null, NaN, infinite, zero or negative value in "
+                                             r"weight column 'w' .*e\.g\. \[\('b', 'c', nan\)\]"):
+        ingest_edges(str(path), tmp_path / "out", source="s", target="d", weight="w")
+
+
+def test_error_message_survives_examples_that_cannot_be_read(tmp_path, monkeypatch):
+    import graphkit.ingest as ingest
+
+    real = ingest.load_sql
+    monkeypatch.setattr(ingest, "load_sql", lambda name: "select broken(" if name == "checks/bad_weights"
+                        else real(name))
+    path = _write(tmp_path / "t.parquet", s=["a", "b"], d=["b", "c"], w=[1.0, -1.0])
+    with pytest.raises(EdgeTableError, match=r"t\.parquet: 1 of 2 rows have a null, NaN, infinite, zero or negative "
+                                             r"value in weight column 'w' \(as float32[^)]*\)$"):
+        ingest_edges(path, tmp_path / "out", source="s", target="d", weight="w")
+
+
+def test_example_rows_are_one_short_line():
+    from graphkit.ingest import _format_rows
+
+    class Odd:
+        def __repr__(self):
+            raise RuntimeError("no repr")
+
+    line = _format_rows([("t", "a\nb", Odd(), 2.5), ("t", "x" * 1000, 1, None)])
+    assert "\n" not in line and "<Odd>" in line and len(line) <= 304 and line.endswith("...]")
