@@ -146,8 +146,9 @@ def _hmac_one(data, start, stop, inner, outer, k, st, block, w, out, row):
 
 @numba.njit(cache=True, nogil=True, parallel=True)
 def _hmac_kernel(data, offsets, inner, outer, k, out):
-    """HMAC-SHA256 digests as hex text (uint8 [n, 64], filled in place) of the messages ``data[offsets[i]:offsets[i + 1]]``
-    from the prepared inner and outer states (uint32 [8]); rows split in chunks over the threads."""
+    """HMAC-SHA256 digests as hex text (uint8 [n, 64], filled in place) of the messages
+    ``data[offsets[i]:offsets[i + 1]]`` (uint8, int64 [n + 1]) from the prepared inner and outer states
+    (uint32 [8]); rows split in chunks of 4096 over the threads."""
     n = offsets.shape[0] - 1
     n_chunks = (n + 4095) // 4096
     for c in numba.prange(n_chunks):
