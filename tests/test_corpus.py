@@ -243,6 +243,20 @@ def test_in_process_run_counts_while_walking(graph_dir, reference, tmp_path, mon
     assert gc._POOLS == {}  # the run's arrays are released
 
 
+def test_corpus_with_a_count_file_per_shard_is_still_read(graph_dir, reference, tmp_path):
+    """Corpora written before visits.npy name a dense count file per shard in their manifest."""
+    out = tmp_path / "c"
+    manifest = write_walk_corpus(graph_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=2)
+    for shard in manifest["shards"]:
+        walks = np.concatenate([c for c in WalkCorpus(out)])[shard["start"]:shard["stop"]]
+        shard["counts"] = f"shard-{shard['index']:05d}.counts.npy"
+        np.save(out / shard["counts"], bincount_visits(walks, 300))
+    del manifest["visits"]
+    (out / "visits.npy").unlink()
+    (out / "manifest.json").write_text(json.dumps(manifest))
+    np.testing.assert_array_equal(WalkCorpus(out).visit_counts(), bincount_visits(reference, 300))
+
+
 def test_visit_pool_drops_spoiled_and_doubled_arrays():
     pool = gc._VisitPool(4, 3)
     a, b, c = pool.arrays

@@ -316,6 +316,24 @@ def test_hash_ids_is_hmac_sha256(key, monkeypatch):
     assert gi.hash_ids(pa.array(["a"]).slice(0, 1), key).to_pylist() == [hmac.new(key, b"a", "sha256").hexdigest()]
 
 
+def test_hash_kernel_without_jit():
+    """The numba HMAC-SHA256 kernel's Python body (NUMBA_DISABLE_JIT=1) gives the standard library's digests too."""
+    code = textwrap.dedent("""
+        import hmac, warnings
+        import pyarrow as pa
+        warnings.simplefilter("ignore")  # numpy warns on the uint32 wrap-around that SHA-256 relies on
+        from graphkit.ids import hash_ids
+        key = b"k" * 70
+        texts = ["", "abc", "x" * 56, "y" * 130, None]
+        want = [None if t is None else hmac.new(key, t.encode(), "sha256").hexdigest() for t in texts]
+        assert hash_ids(pa.array(texts), key).to_pylist() == want
+        print("same")
+    """)
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
+                       env={**os.environ, "NUMBA_DISABLE_JIT": "1"}, timeout=120)
+    assert r.returncode == 0 and r.stdout.strip() == "same", r.stderr
+
+
 def test_ids_are_hashed_once_at_ingest(tmp_path, monkeypatch):
     """Ingest stores the pseudonyms in the node dictionary; the stages after it read them instead of hashing all
     ids again (one id is re-hashed to check the key), and a changed key makes them hash afresh."""

@@ -173,6 +173,14 @@ def test_previous_version_is_read_once_per_run(tmp_path, monkeypatch):
     assert third["version"] == 2 and third["new_rows"].size == 300
     np.testing.assert_array_equal(third["old_vectors"], 2 * x[::-1])
     assert sorted(p.name for p in cache.iterdir()) == ["v000001", "v000002"]
+    # a night whose nodes are all new shares nothing, cached or not
+    fresh = pa.array([f"new{i}" for i in range(5)])
+    for _ in range(2):
+        none = gs.match_current(tmp_path, fresh, pa.array(["node"] * 5), 8, cache_dir=tmp_path / "other")
+        assert none["new_rows"].size == 0 and none["old_vectors"].shape == (0, 8)
+    _, info = align_to_current(tmp_path, fresh, pa.array(["node"] * 5), np.ones((5, 8), np.float32),
+                               cache_dir=tmp_path / "other")
+    assert info["aligned_to"] is None and info["shared_nodes"] == 0
 
 
 @pytest.mark.slow
