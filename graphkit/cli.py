@@ -362,8 +362,18 @@ def _positive_int(text: str) -> int:
     return value
 
 
+def _installed_version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("graphkit")
+    except PackageNotFoundError:  # a source tree that was never installed
+        return "0+unknown"
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="graphkit", description="Nightly node embeddings for relationship graphs.")
+    p.add_argument("--version", action="version", version=f"graphkit {_installed_version()}")
     sub = p.add_subparsers(dest="command", required=True)
 
     r = sub.add_parser("refresh", help="run the refresh flow for a config and publish a new version")

@@ -101,3 +101,13 @@ def test_usage_errors_exit_2(tmp_path):
     assert graphkit("refresh").returncode == 2
     r = graphkit("versions", tmp_path / "none")
     assert r.returncode == 2 and "no embedding store here" in r.stderr
+
+
+def test_version_flag(capsys):
+    """`graphkit --version` prints the installed distribution's version (importlib.metadata) and exits 0."""
+    from importlib.metadata import version
+
+    from graphkit.cli import main
+
+    assert main(["--version"]) == 0
+    assert capsys.readouterr().out.strip() == f"graphkit {version('graphkit')}"
