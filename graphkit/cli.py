@@ -26,16 +26,19 @@ def _prefect_env() -> None:
 
 def cmd_refresh(args) -> int:
     from .config import load_config
-    from .pipeline import preflight
+    from .pipeline import RUN_CLOCK, preflight
 
+    RUN_CLOCK.begin_command()  # the version's timings start at this process's own start
     cfg = load_config(args.config, args.set)
-    preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
+    with RUN_CLOCK.span("preflight"):
+        preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
     _prefect_env()
     from flows.artifacts import console_progress
     from flows.refresh import refresh_flow
     from flows.tempserver import guard_temporary_server
 
-    guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
+    with RUN_CLOCK.span("server_start"):
+        guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
     with console_progress():  # bars on a terminal only
         version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
     print(f"published version {version} to {cfg.store_path}")
