@@ -79,15 +79,22 @@ def cmd_versions(args) -> int:
     def fmt(v):
         return f"{v:.3f}" if isinstance(v, float) else str(v)
 
+    from .report import STAGE_TIMINGS
+
     table = Table(title=f"versions in {args.store}")
-    for col in ("version", "status", "current", "pinned", "created (UTC)", "nodes", "dim", "total s", "metrics",
-                "message"):
+    for col in ("version", "status", "current", "pinned", "created (UTC)", "nodes", "dim", "total s",
+                "stages + fixed s", "metrics", "message"):
         table.add_column(col, overflow="fold")
     for r in rows:
         metrics = r.get("metrics") or {}
-        total = sum(v for v in (r.get("timings") or {}).values() if isinstance(v, (int, float)))
+        # the whole command: the stages plus its fixed costs (start-up, server, report, ...; see --json)
+        timings = {k: v for k, v in (r.get("timings") or {}).items()
+                   if isinstance(v, (int, float)) and not isinstance(v, bool)}
+        total = sum(timings.values())
+        stages = sum(v for k, v in timings.items() if k in STAGE_TIMINGS)
         table.add_row(str(r["version"]), r["status"], "*" if r["is_current"] else "", "*" if r["pinned"] else "",
                       str(r["created_at"])[:19], fmt(r["n_nodes"] or ""), fmt(r["dim"] or ""), f"{total:.1f}",
+                      f"{stages:.1f} + {total - stages:.1f}",
                       " ".join(f"{k}={fmt(v)}" for k, v in metrics.items() if not isinstance(v, (dict, list))),
                       r.get("message") or "")
     Console(width=max(120, Console().width)).print(table)

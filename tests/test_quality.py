@@ -124,3 +124,30 @@ def test_report_command(planted, tmp_path):
     assert r.returncode == 0, r.stderr
     html = out.read_text()
     assert html.count("data:image/png;base64,") >= 4 and "http://" not in html and "https://" not in html
+
+
+def test_report_timing_chart_names_stages_and_fixed_costs(tmp_path):
+    from graphkit.report import write_report
+
+    timings = {"startup": 3.0, "server_start": 10.0, "ingest": 1.0, "walks": 4.0, "train": 6.0, "report": 2.0,
+               "publish": 0.5, "after_publish_estimate": 7.0}
+    out = write_report(tmp_path / "r.html", versions=[{"version": 1, "status": "complete", "timings": timings}],
+                       title="t")
+    html = out.read_text()
+    # by hand: 33.5 s in all, 11.5 s in the stages (ingest, walks, train, publish), 22 s of fixed costs
+    assert "Version 1: 33.5 s recorded, 11.5 s in the stages and 22 s of fixed costs" in html
+    assert "of which 7 s after the publish, estimated" in html
+
+
+def test_versions_command_shows_stages_and_fixed_costs(tmp_path, capsys):
+    from graphkit.cli import main
+    from graphkit.store import publish_embeddings
+
+    store = tmp_path / "store"
+    publish_embeddings(store, pa.array([1, 2, 3]), np.eye(3, dtype=np.float32), params={}, fingerprint=[],
+                       counts={}, timings={"startup": 2.0, "walks": 3.0, "train": 4.0, "report": 1.0})
+    assert main(["versions", str(store)]) == 0
+    out = capsys.readouterr().out
+    # the store adds its own "publish" seconds: stages 7 + publish, fixed 3
+    row = list_versions(store)[0]["timings"]
+    assert f"{sum(row.values()):.1f}" in out and f"{7 + row['publish']:.1f} + 3.0" in out
