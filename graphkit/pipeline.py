@@ -82,8 +82,10 @@ class RunClock:
 
         self.reset()
         self.command_start = psutil.Process().create_time()
-        # registered before the temporary server starts, so that it runs after Prefect's own exit handler stops it
-        atexit.register(self._record_tail, "command")
+        if not getattr(self, "_at_exit", False):  # once per process, however many commands run in it
+            # registered before the temporary server starts, so that it runs after Prefect's exit handler stops it
+            atexit.register(self._record_tail, "command")
+            self._at_exit = True
 
     @contextmanager
     def span(self, name: str):
