@@ -97,7 +97,7 @@ def cmd_versions(args) -> int:
                       f"{stages:.1f} + {total - stages:.1f}",
                       " ".join(f"{k}={fmt(v)}" for k, v in metrics.items() if not isinstance(v, (dict, list))),
                       r.get("message") or "")
-    Console(width=max(120, Console().width)).print(table)
+    Console(width=max(160, Console().width)).print(table)
     return 0
 
 
