@@ -26,16 +26,19 @@ def _prefect_env() -> None:
 
 def cmd_refresh(args) -> int:
     from .config import load_config
-    from .pipeline import preflight
+    from .pipeline import RUN_CLOCK, preflight
 
+    RUN_CLOCK.begin_command()  # the version's timings start at this process's own start
     cfg = load_config(args.config, args.set)
-    preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
+    with RUN_CLOCK.span("preflight"):
+        preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
     _prefect_env()
     from flows.artifacts import console_progress
     from flows.refresh import refresh_flow
     from flows.tempserver import guard_temporary_server
 
-    guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
+    with RUN_CLOCK.span("server_start"):
+        guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
     with console_progress():  # bars on a terminal only
         version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
     print(f"published version {version} to {cfg.store_path}")
@@ -76,18 +79,25 @@ def cmd_versions(args) -> int:
     def fmt(v):
         return f"{v:.3f}" if isinstance(v, float) else str(v)
 
+    from .report import STAGE_TIMINGS
+
     table = Table(title=f"versions in {args.store}")
-    for col in ("version", "status", "current", "pinned", "created (UTC)", "nodes", "dim", "total s", "metrics",
-                "message"):
+    for col in ("version", "status", "current", "pinned", "created (UTC)", "nodes", "dim", "total s",
+                "stages + fixed s", "metrics", "message"):
         table.add_column(col, overflow="fold")
     for r in rows:
         metrics = r.get("metrics") or {}
-        total = sum(v for v in (r.get("timings") or {}).values() if isinstance(v, (int, float)))
+        # the whole command: the stages plus its fixed costs (start-up, server, report, ...; see --json)
+        timings = {k: v for k, v in (r.get("timings") or {}).items()
+                   if isinstance(v, (int, float)) and not isinstance(v, bool)}
+        total = sum(timings.values())
+        stages = sum(v for k, v in timings.items() if k in STAGE_TIMINGS)
         table.add_row(str(r["version"]), r["status"], "*" if r["is_current"] else "", "*" if r["pinned"] else "",
                       str(r["created_at"])[:19], fmt(r["n_nodes"] or ""), fmt(r["dim"] or ""), f"{total:.1f}",
+                      f"{stages:.1f} + {total - stages:.1f}",
                       " ".join(f"{k}={fmt(v)}" for k, v in metrics.items() if not isinstance(v, (dict, list))),
                       r.get("message") or "")
-    Console(width=max(120, Console().width)).print(table)
+    Console(width=max(160, Console().width)).print(table)
     return 0
 
 

@@ -29,7 +29,173 @@ from .io import digest, fingerprint_files, read_json, write_json_atomic
 from .quality import check_labels_table
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_holdout", "stage_walks", "stage_train",
-           "stage_evaluate", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point"]
+           "stage_evaluate", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point", "RUN_CLOCK",
+           "RunClock"]
+
+#: Name of the file in ``STORE/reports/`` holding the measured after-publish cost of the store's last run.
+TAIL_FILE = ".timing-tail.json"
+#: After-publish estimate (s) for a store whose last run left no measurement: cleanup, the run artifact, Prefect's
+#: flow teardown, the temporary server's stop and the interpreter's exit, measured at about 7 s on the 2-core
+#: development machine (docs/evaluation.md).
+DEFAULT_TAIL_SECONDS = {"flow": 0.5, "command": 7.0}
+
+
+class RunClock:
+    """Wall-time accounting of one refresh, so that the timings recorded with a version add up to the run.
+
+    Three kinds of entries end up in the version's ``timings``:
+
+    - costs before the flow starts, added by the command line (:meth:`begin_command`, :meth:`span`):
+      ``startup`` (from the process's own start, read with ``psutil.Process().create_time()``, to the flow:
+      interpreter start-up, imports, the config, and whatever is not timed separately), ``preflight``,
+      ``server_start``;
+    - costs inside the flow: each stage's own seconds (computed by :func:`stage_publish` from the stage dicts),
+      ``plan``, ``lock_wait``, ``align``, ``report`` and ``orchestration`` (the rest of the flow's wall time up to
+      the version row: Prefect's task bookkeeping, loading the node ids, the gates);
+    - ``after_publish_estimate``: what follows the row (catalog switch, diagnostics, cleanup, the run artifact,
+      Prefect's teardown and, from the command line, the temporary server's stop and the interpreter's exit),
+      which cannot be measured before the row is written. It is the value measured at the end of the store's
+      previous run (``STORE/reports/.timing-tail.json``), or :data:`DEFAULT_TAIL_SECONDS` for a first run.
+
+    One instance (:data:`RUN_CLOCK`) serves the process; a flow consumes the command's entries when it starts, so
+    a second flow in the same process starts from nothing.
+    """
+
+    def __init__(self):
+        self.reset()
+
+    def reset(self) -> None:
+        self.command_start = None  # epoch seconds of the process start, when a command line began this run
+        self.before: dict[str, float] = {}
+        self.during: dict[str, float] = {}
+        self.flow_start = None
+        self.from_command = False
+        self.row_at = None  # epoch seconds when the version row's timings were frozen
+        self.row_store = None
+        self.row_publish = 0.0
+
+    def begin_command(self) -> None:
+        """Called first by ``graphkit refresh``: the run's clock starts at the process's own start."""
+        import atexit
+
+        import psutil
+
+        self.reset()
+        self.command_start = psutil.Process().create_time()
+        if not getattr(self, "_at_exit", False):  # once per process, however many commands run in it
+            # registered before the temporary server starts, so that it runs after Prefect's exit handler stops it
+            atexit.register(self._record_tail, "command")
+            self._at_exit = True
+
+    @contextmanager
+    def span(self, name: str):
+        """Time a block and add it under ``name`` (before the flow: to the command's costs)."""
+        t0 = time.time()
+        try:
+            yield
+        finally:
+            self.add(name, time.time() - t0)
+
+    def add(self, name: str, seconds: float) -> None:
+        target = self.during if self.flow_start is not None else self.before
+        target[name] = target.get(name, 0.0) + max(float(seconds), 0.0)
+
+    def begin_flow(self) -> None:
+        """Called when the flow body (or :func:`refresh`) starts."""
+        now = time.time()
+        if self.command_start is None:
+            self.reset()
+        else:
+            self.before["startup"] = max(now - self.command_start - sum(self.before.values()), 0.0)
+            self.command_start, self.from_command = None, True
+        self.flow_start = now
+        self.during = {}
+        self.row_at = None
+
+    def row_timings(self, stage_seconds: float) -> dict[str, float]:
+        """The entries beyond the stages' own seconds, frozen now (just before the version row is written)."""
+        if self.flow_start is None:
+            return {}
+        now = time.time()
+        rest = now - self.flow_start - sum(self.during.values()) - stage_seconds
+        out = {**self.before, **self.during, "orchestration": max(rest, 0.0)}
+        self.row_at = now
+        return {k: round(v, 3) for k, v in out.items()}
+
+    def tail_estimate(self, store) -> float:
+        which = "command" if self.from_command else "flow"
+        try:
+            return float(read_json(Path(store) / "reports" / TAIL_FILE)[which])
+        except (OSError, ValueError, KeyError, TypeError):
+            return DEFAULT_TAIL_SECONDS[which]
+
+    def row_written(self, store, publish_seconds: float) -> None:
+        self.row_store, self.row_publish = str(store), float(publish_seconds)
+
+    def end_flow(self) -> None:
+        """Called last in the flow: measure what followed the version row (for the next run's estimate)."""
+        if not self.from_command:
+            self._record_tail("flow")
+
+    def _record_tail(self, which: str) -> None:
+        if self.row_at is None or self.row_store is None:
+            return
+        since = self.row_at + self.row_publish  # the row's own "publish" seconds are measured, not estimated
+        path = Path(self.row_store) / "reports" / TAIL_FILE
+        self.row_at = None
+        try:
+            if which == "flow":
+                _write_tail(str(path), which, time.time() - since)
+                return
+            # From the command line, the interpreter's own shutdown still follows (several seconds with Prefect,
+            # Dask and numba loaded, in C code after every exit handler): a detached helper holding a pipe whose
+            # only writer is this process takes the time when the pipe closes, i.e. when this process has ended.
+            import subprocess
+            import sys
+
+            read_fd, write_fd = os.pipe()  # non-inheritable: only the helper gets the read end
+            subprocess.Popen([sys.executable, "-I", "-S", "-c", _TAIL_HELPER, str(read_fd), str(path), which,
+                              repr(since)], pass_fds=(read_fd,), start_new_session=True, stdin=subprocess.DEVNULL,
+                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            os.close(read_fd)
+            _KEEP_OPEN.append(write_fd)  # closed by the kernel when this process ends
+        except (OSError, ValueError):  # a measurement for the next run's estimate; never fail a run over it
+            pass
+
+
+_KEEP_OPEN: list[int] = []
+#: The helper of :meth:`RunClock._record_tail`: waits for end of file, then records the seconds since ``since``.
+_TAIL_HELPER = """
+import json, os, sys, time
+fd, path, which, since = int(sys.argv[1]), sys.argv[2], sys.argv[3], float(sys.argv[4])
+with os.fdopen(fd, "rb") as pipe:
+    pipe.read()
+seconds = time.time() - since
+try:
+    with open(path) as f:
+        data = json.load(f)
+except (OSError, ValueError):
+    data = {}
+data[which] = round(max(seconds, 0.0), 3)
+tmp = path + ".tmp-" + str(os.getpid())
+with open(tmp, "w") as f:
+    json.dump(data, f)
+os.replace(tmp, path)
+"""
+
+
+def _write_tail(path: str, which: str, seconds: float) -> None:
+    p = Path(path)
+    try:
+        data = read_json(p) if p.exists() else {}
+    except ValueError:
+        data = {}
+    data[which] = round(max(seconds, 0.0), 3)
+    write_json_atomic(p, data)
+
+
+#: The process's run clock (see :class:`RunClock`).
+RUN_CLOCK = RunClock()
 
 
 def preflight(cfg: RefreshConfig) -> dict[str, Any]:
@@ -78,7 +244,8 @@ def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
     ev = cfg.evaluate
     holdout = {}
     if ev.link_holdout > 0:
-        holdout_key = digest({"ingest": ingest_key, "fraction": ev.link_holdout, "seed": ev.seed})
+        holdout_key = digest({"ingest": ingest_key, "fraction": ev.link_holdout, "seed": ev.seed,
+                              "max_edges": ev.max_holdout_edges})
         eval_walks, eval_train = chain(holdout_key)
         holdout = {"holdout_dir": str(work / f"holdout-{holdout_key}"), "eval_walks_dir": eval_walks,
                    "eval_train_dir": eval_train}
@@ -241,7 +408,8 @@ def stage_holdout(cfg: RefreshConfig, plan: dict) -> dict[str, Any] | None:
     if not plan.get("holdout_dir"):
         return None
     return make_holdout(Path(plan["ingest_dir"]) / "graph", plan["holdout_dir"],
-                        fraction=cfg.evaluate.link_holdout, seed=cfg.evaluate.seed)
+                        fraction=cfg.evaluate.link_holdout, seed=cfg.evaluate.seed,
+                        max_edges=cfg.evaluate.max_holdout_edges)
 
 
 def _published_ids(cfg: RefreshConfig, plan: dict):
@@ -304,13 +472,16 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
                   evaluation: dict | None = None, holdout: dict | None = None) -> int:
     """Check the gates and publish the trained vectors as a new current version; returns its number.
 
-    A run that fails a gate is recorded as a ``failed`` version with the reasons and figures, the current
-    version stays current, and :class:`GateFailure` is raised. The caller holds the store lock
+    The run's HTML report is rendered before the version row is written (so that its cost is in the row) and
+    moved into ``STORE/reports/`` after; the per-node diagnostics are written inside the version before it
+    becomes visible. A run that fails a gate is recorded as a ``failed`` version with the reasons and figures,
+    the current version stays current, and :class:`GateFailure` is raised. The caller holds the store lock
     (see :func:`run_lock`). Idempotent per run (:func:`run_id_of`): a retry after a failure past the catalog
     switch returns the version the first attempt published.
     """
     from .quality import failed_gates
-    from .store import align_to_current, diagnostic_arrays, publish_embeddings, record_failed_run, version_of_run
+    from .store import (align_to_current, diagnostic_arrays, list_versions, publish_embeddings, record_failed_run,
+                        version_of_run)
 
     run_id = run_id_of(plan, train)
     done_before = version_of_run(plan["store"], run_id)
@@ -318,13 +489,15 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     vectors = np.load(train["vectors"])
     alignment = {"aligned_to": None}
     if cfg.store.align and done_before is None:  # a retry is not aligned onto the version it published itself
-        vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors,
-                                              cache_dir=previous_dir(plan))
+        with RUN_CLOCK.span("align"):
+            vectors, alignment = align_to_current(plan["store"], node_ids, node_kinds, vectors,
+                                                  cache_dir=previous_dir(plan))
     counts = {**ingest["counts"], "isolated_nodes": graph["isolated_nodes"],
               "walks": walks["n_walks"], "walk_tokens": walks["n_tokens"], "train_tokens": train["tokens"]}
     if holdout:
         counts["link_holdout"] = {k: v for k, v in holdout.items() if k.startswith("n_")}
-    stages = (("ingest", ingest), ("graph", graph), ("walks", walks), ("train", train), ("evaluate", evaluation))
+    stages = (("ingest", ingest), ("graph", graph), ("holdout", holdout), ("walks", walks), ("train", train),
+              ("evaluate", evaluation))
     timings = {name: (0.0 if stage.get("skipped") else stage["seconds"]) for name, stage in stages if stage}
     metrics = {"train_tokens_per_second": train["tokens_per_second"], **(evaluation or {}).get("metrics", {})}
     if cfg.train.warm_start:
@@ -335,20 +508,33 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
         metrics["walk_diagnostics"] = walks["diagnostics"]
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
                "hashed_ids": cfg.input.hash_ids, "alignment": alignment}
+    reasons = failed_gates(metrics, cfg.gates)
+    figures = _report_figures(cfg, plan)
+    rows = list_versions(plan["store"]) if Path(plan["store"], "catalog.duckdb").exists() else []
+    # the lock is held: nobody else numbers a version meanwhile
+    version = done_before or max((r["version"] for r in rows), default=0) + 1
+    t0 = time.time()
+    report = _render_report(cfg, plan, version, graph, figures, rows, status="failed" if reasons else "complete",
+                            counts=counts, metrics=metrics, timings=timings, vectors=None if reasons else vectors)
+    RUN_CLOCK.add("report", time.time() - t0)
+    timings.update(RUN_CLOCK.row_timings(sum(timings.values())))
+    if RUN_CLOCK.flow_start is not None:
+        timings["after_publish_estimate"] = round(RUN_CLOCK.tail_estimate(plan["store"]), 3)
     record = dict(params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"], counts=counts,
                   timings=timings, metrics=metrics, objective=cfg.train.objective, run_id=run_id)
-    figures = _report_figures(cfg, plan)
-    reasons = failed_gates(metrics, cfg.gates)
     if reasons:
         message = "failed quality gates: " + "; ".join(reasons)
         version = record_failed_run(plan["store"], message=message, **record)
-        _write_reports(cfg, plan, version, figures)
+        RUN_CLOCK.row_written(plan["store"], 0.0)
+        _place_report(plan, version, report)
         raise GateFailure(f"{cfg.store_path}: run recorded as version {version}, not published: "
                           + "; ".join(reasons), version=version, metrics=metrics)
     diagnostics = diagnostic_arrays(**figures) if figures is not None else None
     version = publish_embeddings(plan["store"], node_ids, vectors, node_kinds=node_kinds, keep=cfg.store.keep,
                                  diagnostics=diagnostics, **record)
-    _write_reports(cfg, plan, version, figures, vectors=vectors)
+    published = next((r for r in list_versions(plan["store"]) if r["version"] == version), {})
+    RUN_CLOCK.row_written(plan["store"], float((published.get("timings") or {}).get("publish", 0.0)))
+    _place_report(plan, version, report)
     return version
 
 
@@ -377,19 +563,43 @@ def _report_figures(cfg: RefreshConfig, plan: dict) -> dict | None:
         return None
 
 
-def _write_reports(cfg: RefreshConfig, plan: dict, version: int, figures: dict | None, vectors=None) -> None:
-    """The run's HTML report, next to the run in ``STORE/reports/`` (outside the version, so after the switch);
-    a failure here never fails the run."""
+def _render_report(cfg: RefreshConfig, plan: dict, version: int, graph: dict, figures: dict | None, rows: list, *,
+                   status: str, counts: dict, metrics: dict, timings: dict, vectors=None) -> dict | None:
+    """Render the run's HTML report into a hidden file beside its final place, before the version row exists
+    (the row for this run is drawn from the figures at hand; its report time and after-publish estimate are in
+    the catalog, not in its own chart). Returns what :func:`_place_report` needs; None when it failed (a report
+    never fails the run)."""
+    from datetime import timezone
+
     from .report import write_report
-    from .store import list_versions
 
     if figures is None:
+        return None
+    try:
+        this = {"version": version, "status": status, "created_at": datetime.now(timezone.utc).replace(tzinfo=None),
+                "is_current": status == "complete", "n_nodes": graph["n_nodes"],
+                "dim": None if vectors is None else int(vectors.shape[1]), "counts": counts, "metrics": metrics,
+                "timings": timings}
+        shown = [{**r, "is_current": r["is_current"] and status != "complete"} for r in rows
+                 if r["version"] != version] + [this]
+        final = Path(plan["store"]) / "reports" / f"version-{version:06d}.html"
+        tmp = final.with_name(f".{final.name}.render-{os.getpid()}")
+        write_report(tmp, versions=shown, degrees=figures["degrees"], visit_counts=figures["visit_counts"],
+                     vectors=vectors, labels=figures["labels"],
+                     title=f"graphkit store {Path(plan['store']).name}: version {version}")
+        return {"tmp": tmp}
+    except Exception as exc:  # noqa: BLE001 - the report is a convenience; the version is what matters
+        _warn_report(exc)
+        return None
+
+
+def _place_report(plan: dict, version: int, report: dict | None) -> None:
+    """Move the rendered report into ``STORE/reports/`` (outside the version, so after the switch)."""
+    if report is None:
         return
     try:
-        write_report(Path(plan["store"]) / "reports" / f"version-{version:06d}.html", versions=list_versions(
-            plan["store"]), degrees=figures["degrees"], visit_counts=figures["visit_counts"], vectors=vectors,
-            labels=figures["labels"], title=f"graphkit store {Path(plan['store']).name}: version {version}")
-    except Exception as exc:  # noqa: BLE001 - the report is a convenience; the version is what matters
+        os.replace(report["tmp"], Path(plan["store"]) / "reports" / f"version-{version:06d}.html")
+    except Exception as exc:  # noqa: BLE001
         _warn_report(exc)
 
 
@@ -415,9 +625,11 @@ def run_lock(cfg: RefreshConfig):
     from .store import clean_stale, store_lock
 
     old_mask = os.umask(0o022)  # nothing in the store is world- or group-writable, whatever the caller's umask
+    t0 = time.time()
     try:
         with store_lock(cfg.store_path):
             clean_stale(cfg.store_path)
+            RUN_CLOCK.add("lock_wait", time.time() - t0)  # taking the lock and clearing what dead runs left
             yield
     finally:
         os.umask(old_mask)
@@ -438,15 +650,19 @@ def finish_run(plan: dict) -> list[str]:
 
 def refresh(cfg: RefreshConfig) -> int:
     """Run every stage in order without Prefect (what the flow does, for notebooks and tests)."""
-    plan = plan_run(cfg)
+    RUN_CLOCK.begin_flow()
+    with RUN_CLOCK.span("plan"):
+        plan = plan_run(cfg)
     with run_lock(cfg):
         ingest = stage_ingest(cfg, plan)
         graph = stage_graph(cfg, plan)
         holdout = stage_holdout(cfg, plan)
         eval_train = None
         if holdout is not None and not cfg.evaluate.publish_holdout_model:
-            stage_walks(cfg, plan, "eval")
+            eval_walks = stage_walks(cfg, plan, "eval")
             eval_train = stage_train(cfg, plan, "eval")
+            for name, stage in (("eval_walks", eval_walks), ("eval_train", eval_train)):
+                RUN_CLOCK.add(name, 0.0 if stage.get("skipped") else stage["seconds"])
         walks = stage_walks(cfg, plan)
         train = stage_train(cfg, plan)
         if holdout is not None and cfg.evaluate.publish_holdout_model:
@@ -456,6 +672,8 @@ def refresh(cfg: RefreshConfig) -> int:
             version = stage_publish(cfg, plan, ingest, graph, walks, train, evaluation, holdout)
         except GateFailure:
             finish_run(plan)  # the run is over and recorded; its scratch is not needed for a resume
+            RUN_CLOCK.end_flow()
             raise
         finish_run(plan)
+    RUN_CLOCK.end_flow()
     return version

@@ -18,9 +18,9 @@ from .io import read_json, write_json_atomic
 __all__ = ["make_holdout", "load_labels", "evaluate_vectors", "failed_gates"]
 
 
-def make_holdout(graph_dir, out_dir, *, fraction: float, seed: int) -> dict[str, Any]:
-    """Hold out ``fraction`` of the edges (no node loses all its edges) and save the training graph and the
-    scored pairs under ``out_dir``; skipped when ``holdout.json`` is there."""
+def make_holdout(graph_dir, out_dir, *, fraction: float, seed: int, max_edges: int | None = None) -> dict[str, Any]:
+    """Hold out ``fraction`` of the edges, at most ``max_edges`` (no node loses all its edges), and save the
+    training graph and the scored pairs under ``out_dir``; skipped when ``holdout.json`` is there."""
     from .evaluate import holdout_edges
 
     out = Path(out_dir)
@@ -28,7 +28,7 @@ def make_holdout(graph_dir, out_dir, *, fraction: float, seed: int) -> dict[str,
         return {**read_json(out / "holdout.json"), "skipped": True}
     t0 = time.perf_counter()
     graph = SparseGraph.load(graph_dir, mmap=False)
-    result = holdout_edges(graph, fraction, seed=seed)
+    result = holdout_edges(graph, fraction, seed=seed, max_edges=max_edges)
     result.train_graph.save(out / "graph")
     np.save(out / "positives.npy", result.positives)
     np.save(out / "negatives.npy", result.negatives)

@@ -14,8 +14,8 @@ from sklearn.neighbors import NearestNeighbors
 import graphkit
 from graphkit import SparseGraph, evaluate
 from graphkit.errors import ConfigError, GraphDataWarning
-from graphkit.evaluate import (holdout_edges, link_prediction, neighbour_overlap, node_classification,
-                               procrustes_residual, procrustes_rotation)
+from graphkit.evaluate import (auc_delong, auc_se_hanley_mcneil, holdout_edges, link_prediction, neighbour_overlap,
+                               node_classification, procrustes_residual, procrustes_rotation)
 
 from conftest import graph_from_nx, planted_partition
 
@@ -123,7 +123,7 @@ def test_holdout_short_of_edges_holds_out_what_it_can(two_cliques):
     with pytest.warns(GraphDataWarning, match="held out 12 of the 19 requested"):
         result = holdout_edges(two_cliques, 0.9, seed=0)
     assert result.counts == {"n_edges": 21, "n_requested": 19, "n_held_out": 12, "n_protected": 9,
-                             "n_negatives": 12}
+                             "n_negatives": 12, "max_edges": None}
     assert nx.is_connected(_to_nx(result.train_graph))  # reference: networkx
 
 
@@ -153,6 +153,23 @@ def test_holdout_directed_keeps_out_and_in_arcs():
     assert all(before.has_edge(u, v) and not after.has_edge(u, v) for u, v in pos.tolist())
     assert not any(before.has_edge(u, v) for u, v in neg.tolist())
     assert len(pos) == round(0.3 * before.number_of_edges()) == len(neg)
+
+
+def test_holdout_capped_by_max_edges(planted_graph):
+    graph, _ = planted_graph
+    n_undirected = graph.n_edges // 2
+    capped = holdout_edges(graph, 0.1, seed=1, max_edges=500)
+    assert len(capped.positives) == len(capped.negatives) == 500 < round(0.1 * n_undirected)
+    assert capped.counts["n_requested"] == 500 and capped.counts["max_edges"] == 500
+    assert capped.train_graph.n_edges == graph.n_edges - 1000
+    # the cap above the share changes nothing
+    loose = holdout_edges(graph, 0.1, seed=1, max_edges=10**9)
+    np.testing.assert_array_equal(loose.positives, holdout_edges(graph, 0.1, seed=1).positives)
+    # reference: networkx components; no node loses all its edges under the cap either
+    assert nx.number_connected_components(_to_nx(capped.train_graph)) == nx.number_connected_components(
+        _to_nx(graph))
+    with pytest.raises(ConfigError, match="max_edges must be >= 1, got 0"):
+        holdout_edges(graph, 0.1, max_edges=0)
 
 
 def test_holdout_bad_input(path_graph):
@@ -220,6 +237,62 @@ def test_link_prediction_bad_input():
         link_prediction(v, [[0, 1], [1, 2]], [0, 1])
     with pytest.raises(ConfigError, match="vectors holds 1 NaN"):
         link_prediction(np.array([[np.nan, 0], [1, 1], [0, 1]]), [[0, 1], [1, 2]], [[0, 2], [1, 2]])
+
+
+def test_auc_delong_by_hand_and_against_sklearn():
+    from sklearn.metrics import roc_auc_score
+
+    # By hand (DeLong et al. 1988): positives 0.9, 0.4, 0.8 against negatives 0.5, 0.1, 0.3. Placements
+    # V10 = (1, 2/3, 1) and V01 = (2/3, 1, 1) have sample variance 1/27 each, so Var = 1/81 + 1/81 and
+    # SE = sqrt(2) / 9; the AUC is 8/9.
+    auc, se = auc_delong([0.9, 0.4, 0.8], [0.5, 0.1, 0.3])
+    assert auc == pytest.approx(8 / 9) and se == pytest.approx(np.sqrt(2) / 9)
+    rng = np.random.default_rng(12)
+    x = np.round(rng.normal(1.0, 1.0, 700), 1)  # rounded: many ties, which count half
+    y = np.round(rng.normal(0.0, 1.0, 900), 1)
+    auc, _ = auc_delong(x, y)
+    assert auc == pytest.approx(roc_auc_score(np.r_[np.ones(700), np.zeros(900)], np.r_[x, y]), abs=1e-12)
+
+
+@pytest.mark.parametrize("shift", [0.5, 1.5])
+def test_auc_delong_se_matches_the_bootstrap(shift):
+    from sklearn.metrics import roc_auc_score
+
+    rng = np.random.default_rng(13)
+    x, y = rng.normal(shift, 1.0, 800), rng.normal(0.0, 1.0, 800)
+    auc, se = auc_delong(x, y)
+    labels = np.r_[np.ones(800), np.zeros(800)]
+    # Reference: the bootstrap (Efron & Tibshirani 1993), resampling positives and negatives separately and
+    # scoring each replicate with sklearn.metrics.roc_auc_score. 400 replicates estimate an SE to about 4%.
+    boot = [roc_auc_score(labels, np.r_[rng.choice(x, 800), rng.choice(y, 800)]) for _ in range(400)]
+    assert se == pytest.approx(np.std(boot, ddof=1), rel=0.15)
+    # Hanley & McNeil's closed form (1982) is close for these normal scores (its exponential model is an
+    # approximation; within 15% here, checked by hand for these seeds)
+    assert auc_se_hanley_mcneil(auc, 800, 800) == pytest.approx(se, rel=0.15)
+
+
+def test_auc_se_hanley_mcneil_by_hand_and_bad_input():
+    # By hand from eq. 1 of Hanley & McNeil (1982): A = 0.8, 10 and 10 -> Q1 = 2/3, Q2 = 32/45,
+    # Var = (0.16 + 9 (2/3 - 0.64) + 9 (32/45 - 0.64)) / 100 = (0.16 + 0.24 + 0.64) / 100 = 0.0104 -> SE 0.102.
+    assert auc_se_hanley_mcneil(0.8, 10, 10) == pytest.approx(np.sqrt(0.0104), rel=1e-9)
+    assert auc_se_hanley_mcneil(1.0, 50, 50) == 0.0
+    with pytest.raises(ConfigError, match=r"auc must be in \[0, 1\], got 1.2"):
+        auc_se_hanley_mcneil(1.2, 10, 10)
+    with pytest.raises(ConfigError, match="negative_scores must hold at least 1 score"):
+        auc_delong([0.1, 0.2], [])
+    with pytest.raises(ConfigError, match="positive_scores holds NaN"):
+        auc_delong([np.nan, 0.2], [0.1])
+
+
+def test_link_prediction_reports_standard_errors():
+    rng = np.random.default_rng(14)
+    vectors = rng.normal(size=(3000, 16)).astype(np.float32)
+    pos, neg = rng.integers(0, 3000, size=(2000, 2)), rng.integers(0, 3000, size=(2000, 2))
+    out = link_prediction(vectors, pos, neg)
+    # Chance-level scores: Var(AUC) = (m + n + 1) / (12 m n) (Mann-Whitney's null variance, from memory), so
+    # SE = 0.00645 for 2000 and 2000 pairs on all pairs, and 0.0091 on the Hadamard scorer's test half.
+    assert out["link_auc_cosine_se"] == pytest.approx(np.sqrt(4001 / (12 * 2000 * 2000)), rel=0.1)
+    assert out["link_auc_hadamard_se"] == pytest.approx(np.sqrt(2001 / (12 * 1000 * 1000)), rel=0.1)
 
 
 # ---------------------------------------------------------------------------------------------------- classification

@@ -88,6 +88,14 @@ def test_good_run_passes_gates_and_records_metrics(planted):
     per_ratio = m["node_classification"]["per_ratio"]
     assert [r["ratio"] for r in per_ratio] == [0.1, 0.5]
     assert row["counts"]["link_holdout"]["n_held_out"] > 0
+    # DeLong's SE (Biometrics 1988) of about 4,600 held-out pairs: Hanley & McNeil's closed form (1982) for the same
+    # AUC and counts is the outside check, within a factor of 2 (it assumes exponential score distributions)
+    from graphkit.evaluate import auc_se_hanley_mcneil
+
+    n_pos = row["counts"]["link_holdout"]["n_held_out"]
+    hm = auc_se_hanley_mcneil(m["link_auc_cosine"], n_pos, row["counts"]["link_holdout"]["n_negatives"])
+    assert 0.5 * hm < m["link_auc_cosine_se"] < 2 * hm
+    assert "eval_walks" not in row["timings"] and row["timings"]["holdout"] > 0  # one pass
     assert (planted / "store" / "reports" / f"version-{version:06d}.html").exists()
     out = subprocess.run([sys.executable, "-m", "graphkit.cli", "versions", str(planted / "store")],
                          capture_output=True, text=True, cwd=ROOT)
@@ -132,3 +140,55 @@ def test_report_command(planted, tmp_path):
     assert r.returncode == 0, r.stderr
     html = out.read_text()
     assert html.count("data:image/png;base64,") >= 4 and "http://" not in html and "https://" not in html
+
+
+def test_report_timing_chart_names_stages_and_fixed_costs(tmp_path):
+    from graphkit.report import write_report
+
+    timings = {"startup": 3.0, "server_start": 10.0, "ingest": 1.0, "walks": 4.0, "train": 6.0, "report": 2.0,
+               "publish": 0.5, "after_publish_estimate": 7.0}
+    out = write_report(tmp_path / "r.html", versions=[{"version": 1, "status": "complete", "timings": timings}],
+                       title="t")
+    html = out.read_text()
+    # by hand: 33.5 s in all, 11.5 s in the stages (ingest, walks, train, publish), 22 s of fixed costs
+    assert "Version 1: 33.5 s recorded, 11.5 s in the stages and 22 s of fixed costs" in html
+    assert "of which 7 s after the publish, estimated" in html
+
+
+def test_versions_command_shows_stages_and_fixed_costs(tmp_path, capsys):
+    from graphkit.cli import main
+    from graphkit.store import publish_embeddings
+
+    store = tmp_path / "store"
+    publish_embeddings(store, pa.array([1, 2, 3]), np.eye(3, dtype=np.float32), params={}, fingerprint=[],
+                       counts={}, timings={"startup": 2.0, "walks": 3.0, "train": 4.0, "report": 1.0})
+    assert main(["versions", str(store)]) == 0
+    out = capsys.readouterr().out
+    # the store adds its own "publish" seconds: stages 7 + publish, fixed 3
+    row = list_versions(store)[0]["timings"]
+    assert f"{sum(row.values()):.1f}" in out and f"{7 + row['publish']:.1f} + 3.0" in out
+
+
+def test_plan_publishes_the_holdout_model_unless_told_otherwise(planted):
+    from graphkit.pipeline import plan_run
+
+    one = plan_run(load_config(planted / "c.toml"))
+    # default: one walk/train pass on the holdout graph, and that model is published
+    assert one["graph_dir"] == str(Path(one["holdout_dir"]) / "graph")
+    assert (one["walks_dir"], one["train_dir"]) == (one["eval_walks_dir"], one["eval_train_dir"])
+    two = plan_run(load_config(planted / "c.toml", ["evaluate.publish_holdout_model=false"]))
+    assert two["graph_dir"] == str(Path(two["ingest_dir"]) / "graph") and two["walks_dir"] != two["eval_walks_dir"]
+    # the cap is part of the holdout's key: changing it redoes the holdout, not the ingest
+    capped = plan_run(load_config(planted / "c.toml", ["evaluate.max_holdout_edges=100"]))
+    assert capped["holdout_dir"] != one["holdout_dir"] and capped["ingest_dir"] == one["ingest_dir"]
+
+
+@pytest.mark.slow
+def test_two_pass_mode_still_runs_and_times_both_passes(planted, tmp_path):
+    cfg = load_config(planted / "c.toml", [f'store.path="{tmp_path / "store"}"', "evaluate.publish_holdout_model=false",
+                                           "evaluate.max_holdout_edges=300"])
+    graphkit.refresh(cfg)
+    row = list_versions(tmp_path / "store")[-1]
+    assert row["status"] == "complete" and row["counts"]["link_holdout"]["n_held_out"] == 300
+    assert row["timings"]["eval_walks"] > 0 and row["timings"]["eval_train"] > 0
+    assert row["metrics"]["link_auc_cosine"] > 0.8
