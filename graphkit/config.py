@@ -209,7 +209,8 @@ class EvaluateSection(_Section):
 
     @model_validator(mode="after")
     def _options_need_their_table(self):
-        if self.publish_holdout_model and self.link_holdout == 0:
+        # the default (true) is fine without a holdout; only an explicit setting that cannot take effect is refused
+        if self.publish_holdout_model and self.link_holdout == 0 and "publish_holdout_model" in self.model_fields_set:
             raise CrossKeyError("[evaluate] publish_holdout_model = true needs held-out edges, but [evaluate] "
                                 "link_holdout = 0", ("evaluate", "publish_holdout_model"),
                                 ("evaluate", "link_holdout"))
