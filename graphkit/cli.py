@@ -1,7 +1,8 @@
 """The ``graphkit`` command line.
 
 Exit codes: 0 done; 2 bad input or config (one line on stderr naming the file, column or key); 3 the run failed a
-quality gate (recorded as a failed version, the current version stays current); 1 anything else.
+quality gate (recorded as a failed version, the current version stays current); 130 and 143 ``refresh`` or
+``schedule`` stopped by SIGINT (Ctrl-C) or SIGTERM (see :mod:`graphkit.interrupt`); 1 anything else.
 """
 
 from __future__ import annotations
@@ -9,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -24,35 +26,67 @@ def _prefect_env() -> None:
     os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
 
+def _stopped_refresh(signum: int) -> str:
+    return (f"graphkit: refresh stopped by {signal.Signals(signum).name}; nothing was published, "
+            "run it again to resume from the finished stages")
+
+
+def _stopped_schedule(signum: int) -> str:
+    return (f"graphkit: schedule stopped by {signal.Signals(signum).name}; its runs are paused until "
+            "`graphkit schedule` runs again")
+
+
 def cmd_refresh(args) -> int:
     from .config import load_config
+    from .interrupt import stop_on_signals
     from .pipeline import preflight
 
-    cfg = load_config(args.config, args.set)
-    preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
-    _prefect_env()
-    from flows.artifacts import console_progress
-    from flows.refresh import refresh_flow
-    from flows.tempserver import guard_temporary_server
+    with stop_on_signals(_stopped_refresh) as guard:
+        try:
+            cfg = load_config(args.config, args.set)
+            preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
+            _prefect_env()
+            from flows.artifacts import console_progress
+            from flows.refresh import refresh_flow
+            from flows.tempserver import guard_temporary_server
 
-    guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
-    with console_progress():  # bars on a terminal only
-        version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
-    print(f"published version {version} to {cfg.store_path}")
+            guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
+            with console_progress():  # bars on a terminal only
+                version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
+        except BaseException:
+            if guard.signum is None:
+                raise
+            return guard.announce()  # whatever the signal surfaced as: KeyboardInterrupt, a crashed flow run
+        print(f"published version {version} to {cfg.store_path}")
+        if guard.signum is not None:  # the signal came after the run could no longer be stopped
+            guard.announce(f"graphkit: {signal.Signals(guard.signum).name} came too late to stop the run: "
+                           f"version {version} was published")
+            return 0
     return 0
 
 
 def cmd_schedule(args) -> int:
     from .config import load_config
+    from .interrupt import stop_on_signals
     from .pipeline import preflight
 
-    cfg = load_config(args.config, args.set)
-    preflight(cfg)
-    _prefect_env()
-    from flows.nightly import serve_nightly
+    with stop_on_signals(_stopped_schedule) as guard:
+        try:
+            cfg = load_config(args.config, args.set)
+            preflight(cfg)
+            _prefect_env()
+            from flows.nightly import serve_nightly
+            from flows.tempserver import guard_temporary_server
 
-    serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone, name=args.name,
-                  overrides=list(args.set))
+            guard_temporary_server()  # stopped after serving has wound down, never by the terminal's Ctrl-C
+            serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone,
+                          name=args.name, overrides=list(args.set))
+        except BaseException:
+            if guard.signum is None:
+                raise
+            return guard.announce()
+        if guard.signum is not None:  # Prefect's serve ends quietly on SIGINT and SIGTERM
+            return guard.announce()
     return 0
 
 
