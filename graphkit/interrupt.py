@@ -7,7 +7,8 @@ Inside :func:`stop_on_signals`:
   main thread, once: ``finally`` blocks and context managers unwind as for Ctrl-C, so the Dask cluster closes,
   the store lock is released and Prefect records the flow run as crashed. Nothing is published: a version
   becomes visible only by the last rename of the publish step, and a rerun resumes from the finished stages.
-  Later signals raise nothing, so they cannot break that unwinding halfway.
+  Later signals raise nothing, so they cannot break that unwinding halfway, and once the body has ended after a
+  signal, SIGINT and SIGTERM are ignored for the rest of the process's life.
 - A watcher thread sees every signal through :func:`signal.set_wakeup_fd`, even while the main thread is inside
   a numba kernel or a DuckDB query and cannot run a Python handler. At the first one it sends everything the
   process writes to stderr from then on (Prefect's crash reports and their tracebacks, Dask's shutdown messages)
@@ -29,7 +30,7 @@ from contextlib import contextmanager
 __all__ = ["Interrupted", "StopGuard", "stop_on_signals", "exit_code", "GRACE_SECONDS"]
 
 #: Seconds between the first signal and the hard exit of a process that has not ended by itself.
-GRACE_SECONDS = 8.0
+GRACE_SECONDS = 6.0  # the issue's bound is 10 s; the rest is margin for a machine under load
 _SIGNALS = (signal.SIGINT, signal.SIGTERM)
 
 
@@ -70,6 +71,11 @@ class StopGuard:
         raise Interrupted(signum)
 
     # -- in any thread
+    def note(self, signum: int) -> None:
+        """Record a stop by ``signum`` and silence stderr now: for a library's own signal handler that runs
+        before the watcher thread has seen the signal (see ``cmd_schedule``)."""
+        self._note(signum)
+
     def _note(self, signum: int) -> None:
         with self._lock:
             if self.signum is not None:
@@ -110,7 +116,8 @@ class StopGuard:
         return code
 
     def cancel(self) -> None:
-        """Call off the hard exit (for a caller that handles the stop itself and goes on living)."""
+        """Call off the hard exit and the ignoring of later signals (for a caller that handles the stop itself
+        and goes on living)."""
         self._cancelled.set()
 
     def _deadline(self) -> None:
@@ -160,7 +167,10 @@ def stop_on_signals(describe, *, grace: float = GRACE_SECONDS):
         yield guard
     finally:
         for s, h in previous.items():
-            signal.signal(s, h if h is not None else signal.SIG_DFL)
+            # once stopping, stay stopping: a late or second signal must not turn the exit into a traceback or
+            # a death by signal while the process winds down (the deadline still ends it)
+            stopping = guard.signum is not None and not guard._cancelled.is_set()
+            signal.signal(s, signal.SIG_IGN if stopping else (h if h is not None else signal.SIG_DFL))
         signal.set_wakeup_fd(old_wakeup)
         os.close(write_fd)  # the watcher reads end of file and returns
         watcher.join(timeout=1.0)

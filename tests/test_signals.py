@@ -29,7 +29,7 @@ ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "sample_parquet" / "demo.toml"
 # More walks than FAST_DEMO, so that the walks and training last long enough to be interrupted; a relative time
 # window (decay measured from "now"), as a nightly config has, so the resume also needs a fixed as_of.
-LONGER = [*FAST_DEMO, "walks.per_node=100", 'input.timestamp="sent_at"', "input.half_life_days=30"]
+LONGER = [*FAST_DEMO, "walks.per_node=200", 'input.timestamp="sent_at"', "input.half_life_days=30"]
 #: The issue's bound from the signal to the end of the process.
 EXIT_WITHIN = 10.0
 
@@ -155,7 +155,7 @@ def test_ctrl_c_then_sigterm_stop_a_refresh_and_the_rerun_resumes(store):
     before = _hash_store(store)
     args = _refresh_args(store, LONGER)
 
-    first = _interrupt(args, when="stage walks started", sig=signal.SIGINT, to_group=True, delay=1.5)
+    first = _interrupt(args, when="stage walks started", sig=signal.SIGINT, to_group=True, delay=1.0)
     _assert_stopped(first, signal.SIGINT, "refresh")
     _assert_nothing_left(first["seen"])
     assert _hash_store(store) == before
@@ -163,7 +163,7 @@ def test_ctrl_c_then_sigterm_stop_a_refresh_and_the_rerun_resumes(store):
     work = store / "work"
     [record] = work.glob("run-*.json")  # the as_of of the unfinished run, for the rerun to take
     [ingest] = work.glob("ingest-*")
-    assert (ingest / "ingest.json").is_file()
+    assert (ingest / "ingest.json").is_file() and not list(work.glob("train-*/train.json"))
 
     second = _interrupt(args, when="stage train started", sig=signal.SIGTERM, to_group=False, delay=0.5)
     _assert_stopped(second, signal.SIGTERM, "refresh")
