@@ -152,6 +152,18 @@ def _attach_artifact(log, store: str, record: dict, version: int | None, error: 
         log.warning("could not attach the run artifact: %s: %s", type(exc).__name__, exc)
 
 
+def _scheduled_as_of():
+    """The scheduled start time of a deployment run (a retry or a rerun of that flow run gets the same one), or
+    None for a run started directly, such as ``graphkit refresh`` (see :func:`graphkit.pipeline.plan_run`)."""
+    from prefect.context import FlowRunContext
+
+    ctx = FlowRunContext.get()
+    run = ctx.flow_run if ctx else None
+    if run is None or run.deployment_id is None:
+        return None
+    return run.expected_start_time
+
+
 @flow(name="graphkit-refresh", persist_result=True)
 def refresh_flow(config_path: str = "sample_parquet/demo.toml", overrides: list[str] | None = None) -> int:
     """Refresh the node embeddings a config describes and publish them as a new version."""
@@ -165,8 +177,10 @@ def refresh_flow(config_path: str = "sample_parquet/demo.toml", overrides: list[
         # inside the try: a scheduled run with a broken config or input still leaves its report
         with clock.span("plan"):
             cfg = load_config(config_path, overrides or [])
-            plan = pipeline.plan_run(cfg)
+            plan = pipeline.plan_run(cfg, _scheduled_as_of())
+        log.info("as_of %s (%s)", plan["as_of"], plan["as_of_source"])
         with pipeline.run_lock(cfg), listen(LogProgress(log)):
+            pipeline.begin_run(plan)
             # the same steps, in the same order, as graphkit.pipeline.refresh
             ingest = _run_stage("ingest", ingest_task, plan, log, record, cfg, plan)
             for warning in ingest.get("warnings", []):

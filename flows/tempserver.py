@@ -7,6 +7,11 @@ starts that server up front and, beside it, a small watchdog process in its own 
 whose only writer is this process: the pipe closes when this process ends, however it ends, and the watchdog
 then stops the server if it is still running. A normal exit is unchanged (Prefect stops its server at exit; the
 watchdog finds it gone).
+
+The server runs in a session and process group of its own. A terminal's Ctrl-C sends SIGINT to its whole
+foreground process group; were the server in it, it would die at the same moment as the flow, and the flow's
+last calls (recording the run as crashed) would retry a dead API for minutes. Out of the group, the server is
+stopped only after the flow has wound down: by Prefect at exit, or by the watchdog when the process is gone.
 """
 
 from __future__ import annotations
@@ -37,6 +42,8 @@ def guard_temporary_server() -> int | None:
     from prefect.server.api.server import SubprocessASGIServer
 
     server = SubprocessASGIServer()  # the one instance Prefect's client starts and reuses when no API URL is set
+    if not server.running:
+        _in_own_session(server)
     server.start()
     pid = server.server_process.pid
     started = psutil.Process(pid).create_time()
@@ -47,6 +54,36 @@ def guard_temporary_server() -> int | None:
     os.close(read_fd)
     _KEEP.append(write_fd)  # never closed by us: it closes when this process ends
     return watchdog.pid
+
+
+class _OwnSessionSubprocess:
+    """Stands in for the ``subprocess`` module inside Prefect's server module while it starts the server."""
+
+    def __getattr__(self, name):
+        return getattr(subprocess, name)
+
+    @staticmethod
+    def Popen(*args, **kwargs):  # noqa: N802 - the name it stands in for
+        kwargs["start_new_session"] = True
+        return subprocess.Popen(*args, **kwargs)
+
+
+def _in_own_session(server) -> None:
+    """Make ``server`` start its uvicorn process with ``start_new_session=True`` (Prefect's own command line and
+    environment, only the session differs)."""
+    from prefect.server.api import server as server_module
+
+    start = server._run_uvicorn_command
+
+    def run_in_own_session():
+        saved = server_module.subprocess
+        server_module.subprocess = _OwnSessionSubprocess()
+        try:
+            return start()
+        finally:
+            server_module.subprocess = saved
+
+    server._run_uvicorn_command = run_in_own_session
 
 
 def watch(read_fd: int, pid: int, started: float) -> None:

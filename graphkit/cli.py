@@ -1,7 +1,8 @@
 """The ``graphkit`` command line.
 
 Exit codes: 0 done; 2 bad input or config (one line on stderr naming the file, column or key); 3 the run failed a
-quality gate (recorded as a failed version, the current version stays current); 1 anything else.
+quality gate (recorded as a failed version, the current version stays current); 130 and 143 ``refresh`` or
+``schedule`` stopped by SIGINT (Ctrl-C) or SIGTERM (see :mod:`graphkit.interrupt`); 1 anything else.
 """
 
 from __future__ import annotations
@@ -9,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -24,38 +26,131 @@ def _prefect_env() -> None:
     os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
 
+#: Set when refresh or schedule was stopped by a signal (see :func:`run`).
+_STOPPED: list[int] = []
+
+
+def _stopped_refresh(signum: int) -> str:
+    return (f"graphkit: refresh stopped by {signal.Signals(signum).name}; nothing was published, "
+            "run it again to resume from the finished stages")
+
+
+def _stopped_schedule(signum: int) -> str:
+    return (f"graphkit: schedule stopped by {signal.Signals(signum).name}; its runs are paused until "
+            "`graphkit schedule` runs again")
+
+
+def _latest_version(store) -> int | None:
+    """The newest version in the catalog (complete or failed), or None; never raises."""
+    try:
+        from .store import list_versions
+
+        return max((r["version"] for r in list_versions(store)), default=None)
+    except Exception:  # noqa: BLE001 - only used to word the line of an interrupted run
+        return None
+
+
 def cmd_refresh(args) -> int:
     from .config import load_config
+    from .interrupt import stop_on_signals
     from .pipeline import RUN_CLOCK, preflight
 
     RUN_CLOCK.begin_command()  # the version's timings start at this process's own start
-    cfg = load_config(args.config, args.set)
-    with RUN_CLOCK.span("preflight"):
-        preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
-    _prefect_env()
-    from flows.artifacts import console_progress
-    from flows.refresh import refresh_flow
-    from flows.tempserver import guard_temporary_server
 
-    with RUN_CLOCK.span("server_start"):
-        guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
-    with console_progress():  # bars on a terminal only
-        version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
-    print(f"published version {version} to {cfg.store_path}")
+    cfg, unread = None, object()
+    before = unread  # the newest version before the flow started, once read
+    with stop_on_signals(_stopped_refresh) as guard:
+        try:
+            cfg = load_config(args.config, args.set)
+            with RUN_CLOCK.span("preflight"):
+                preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
+            _prefect_env()
+            from flows.artifacts import console_progress
+            from flows.refresh import refresh_flow
+            from flows.tempserver import guard_temporary_server
+
+            with RUN_CLOCK.span("server_start"):
+                guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
+            _quiet_flow_sigterm(guard)
+            before = _latest_version(cfg.store_path)
+            with console_progress():  # bars on a terminal only
+                version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
+        except BaseException:
+            if guard.signum is None:
+                raise
+            # whatever the signal surfaced as (KeyboardInterrupt, a crashed flow run); say so if it came after
+            # the publish step, when the version was already out
+            latest = _latest_version(cfg.store_path) if before is not unread else None
+            if latest is not None and latest != before:
+                _STOPPED.append(guard.signum)
+                return guard.announce(f"graphkit: refresh stopped by {signal.Signals(guard.signum).name}; "
+                                      f"version {latest} had already been published")
+            _STOPPED.append(guard.signum)
+            return guard.announce()
+        print(f"published version {version} to {cfg.store_path}")
+        if guard.signum is not None:  # the signal came after the run could no longer be stopped
+            guard.announce(f"graphkit: {signal.Signals(guard.signum).name} came too late to stop the run: "
+                           f"version {version} was published")
+            return 0
     return 0
+
+
+def _quiet_flow_sigterm(guard) -> None:
+    """During a flow run Prefect's own SIGTERM handler raises in the main thread, and its crash report is logged
+    at once; have it silence stderr first (as :func:`_quiet_runner_sigterm` does for serving)."""
+    from prefect.utilities import engine
+
+    handle = getattr(engine, "_prefect_sigterm_handler", None)
+    if handle is None or getattr(handle, "_graphkit_quiet", False):
+        return
+
+    def handler(signum, frame):
+        guard.note(signum)
+        return handle(signum, frame)
+
+    handler._graphkit_quiet = True
+    engine._prefect_sigterm_handler = handler  # looked up by name each time Prefect installs it
+
+
+def _quiet_runner_sigterm(guard) -> None:
+    """Prefect's Runner replaces the SIGTERM handler while serving and logs from it at once; have it silence
+    stderr first, so that the command's own line stays the only one after the signal."""
+    from prefect.runner import Runner
+
+    handle = Runner.handle_sigterm
+
+    def handle_sigterm(self, *args, **kwargs):
+        guard.note(signal.SIGTERM)
+        return handle(self, *args, **kwargs)
+
+    Runner.handle_sigterm = handle_sigterm  # this process only serves; it ends with the command
 
 
 def cmd_schedule(args) -> int:
     from .config import load_config
+    from .interrupt import stop_on_signals
     from .pipeline import preflight
 
-    cfg = load_config(args.config, args.set)
-    preflight(cfg)
-    _prefect_env()
-    from flows.nightly import serve_nightly
+    with stop_on_signals(_stopped_schedule) as guard:
+        try:
+            cfg = load_config(args.config, args.set)
+            preflight(cfg)
+            _prefect_env()
+            from flows.nightly import serve_nightly
+            from flows.tempserver import guard_temporary_server
 
-    serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone, name=args.name,
-                  overrides=list(args.set))
+            guard_temporary_server()  # stopped after serving has wound down, never by the terminal's Ctrl-C
+            _quiet_runner_sigterm(guard)
+            serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone,
+                          name=args.name, overrides=list(args.set))
+        except BaseException:
+            if guard.signum is None:
+                raise
+            _STOPPED.append(guard.signum)
+            return guard.announce()
+        if guard.signum is not None:  # Prefect's serve ends quietly on SIGINT and SIGTERM
+            _STOPPED.append(guard.signum)
+            return guard.announce()
     return 0
 
 
@@ -496,5 +591,26 @@ def main(argv=None) -> int:
         return 1
 
 
+def run(argv=None) -> None:
+    """The ``graphkit`` program: :func:`main`, then exit with its code.
+
+    After a stop by SIGINT or SIGTERM the process ends right away once Prefect's exit handlers have run (they
+    flush the run's logs and stop the temporary server): left to the interpreter's own shutdown, a refresh
+    interrupted while Dask was starting was seen to end by SIGINT (exit -2) after its line, instead of 130.
+    """
+    code = main(argv)
+    if _STOPPED:
+        import atexit
+
+        for stream in (sys.stdout, sys.stderr):
+            try:
+                stream.flush()
+            except (OSError, ValueError):
+                pass
+        atexit._run_exitfuncs()
+        os._exit(code)
+    sys.exit(code)
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    run()

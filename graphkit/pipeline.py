@@ -11,7 +11,7 @@ from __future__ import annotations
 import os
 import shutil
 import time
-from datetime import datetime
+from datetime import datetime, timedelta, timezone
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
@@ -29,7 +29,7 @@ from .io import digest, fingerprint_files, read_json, write_json_atomic
 from .quality import check_labels_table
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_holdout", "stage_walks", "stage_train",
-           "stage_evaluate", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point", "RUN_CLOCK",
+           "stage_evaluate", "begin_run", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point", "RUN_CLOCK",
            "RunClock"]
 
 #: Name of the file in ``STORE/reports/`` holding the measured after-publish cost of the store's last run.
@@ -198,16 +198,17 @@ def _write_tail(path: str, which: str, seconds: float) -> None:
 RUN_CLOCK = RunClock()
 
 
-def preflight(cfg: RefreshConfig) -> dict[str, Any]:
+def preflight(cfg: RefreshConfig, as_of: datetime | None = None) -> dict[str, Any]:
     """Checks that must fail within seconds, before any work: the store path and its lock, the id-hashing key,
-    the labels table, and the edge tables' files, format, columns and rows."""
+    the labels table, and the edge tables' files, format, columns and rows (counted in the window ending at
+    ``as_of``, default now)."""
     from .store import check_store_writable
 
     check_store_writable(cfg.store_path)
     if cfg.input.hash_ids:
         salt_from_env(cfg.input.hash_salt_env)
     info = validate_edge_tables(cfg.tables(), drop_null_ids=cfg.input.drop_null_ids,
-                                window=cfg.input.time_window())
+                                window=cfg.input.time_window(as_of))
     if cfg.labels_path is not None:
         check_labels_table(cfg.labels_path, id_column=cfg.evaluate.label_id_column,
                            label_column=cfg.evaluate.label_column, kind=cfg.evaluate.label_kind,
@@ -215,17 +216,63 @@ def preflight(cfg: RefreshConfig) -> dict[str, Any]:
     return info
 
 
-def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
-    """Work folders and stage keys for a config (reads only the input files' sizes and footers)."""
-    store = cfg.store_path
-    files = [f for fs in preflight(cfg)["files"] for f in fs]
-    fingerprint = fingerprint_files(files)
+#: A manual run resumes an unfinished run of the same input only while that run's ``as_of`` is younger than this.
+RESUME_WITHIN_HOURS = 24.0
+#: ``STORE/work/run-<input key>.json``: the ``as_of`` of a run that has started and not finished.
+RUN_RECORD_PREFIX = "run-"
+
+
+def _utc(moment: datetime) -> datetime:
+    return (moment if moment.tzinfo else moment.replace(tzinfo=timezone.utc)).astimezone(timezone.utc)
+
+
+def _choose_as_of(cfg: RefreshConfig, record: Path, as_of: datetime | None, now: datetime | None
+                  ) -> tuple[datetime, str]:
+    """The run's reference time and where it comes from (see :func:`plan_run`)."""
     window = cfg.input.time_window()
-    inp = cfg.input
-    windowed = any(v is not None for v in (inp.since, inp.until, inp.last_days, inp.half_life_days))
-    ingest_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(exclude={"tables"}),
-                         "tables": [t.model_dump() for t in cfg.tables()], "window": window if windowed else None})
+    if window["until"] is not None:
+        return window["until"], "until"
+    if as_of is not None:
+        return _utc(as_of), "scheduled"
+    now = _utc(now or datetime.now(timezone.utc)).replace(microsecond=0)
+    try:
+        previous = datetime.fromisoformat(read_json(record)["as_of"])
+    except (OSError, ValueError, KeyError, TypeError):
+        previous = None
+    if previous is not None and timedelta(0) <= now - _utc(previous) < timedelta(hours=RESUME_WITHIN_HOURS):
+        return _utc(previous), "resumed"
+    return now, "now"
+
+
+def plan_run(cfg: RefreshConfig, as_of: datetime | None = None, *, now: datetime | None = None) -> dict[str, Any]:
+    """Work folders and stage keys for a config (reads the input files once to fingerprint them).
+
+    The run's reference time ``as_of`` (the end of a ``last_days`` window, the age reference of
+    ``half_life_days``) is fixed here, once per run, and recorded in the plan (``as_of``, ``as_of_source``):
+
+    - ``[input] until`` when the config sets it (``"until"``);
+    - else the ``as_of`` given, which the flow passes for a deployment run: its scheduled start time
+      (``"scheduled"``);
+    - else the ``as_of`` of an unfinished run of the same input (same files, same content, same ``[input]``
+      settings) recorded in ``STORE/work/run-<key>.json`` by :func:`begin_run`, if it is less than
+      :data:`RESUME_WITHIN_HOURS` old (``"resumed"``): a rerun after a kill resumes from its finished stages;
+    - else now, to the second (``"now"``).
+    """
+    store = cfg.store_path
     work = store / "work"
+    files = [f for fs in preflight(cfg, as_of)["files"] for f in fs]
+    fingerprint = fingerprint_files(files)
+    inp = cfg.input
+    input_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(exclude={"tables"}),
+                        "tables": [t.model_dump() for t in cfg.tables()]})
+    record = work / f"{RUN_RECORD_PREFIX}{input_key}.json"
+    as_of, as_of_source = _choose_as_of(cfg, record, as_of, now)
+    window = cfg.input.time_window(as_of)
+    windowed = any(v is not None for v in (inp.since, inp.until, inp.last_days, inp.half_life_days))
+    # as_of shapes the result only through a last_days window (already in since) or the weight decay
+    key_window = None if not windowed else {**window, "as_of": as_of if inp.half_life_days is not None else None}
+    ingest_key = digest({"fingerprint": fingerprint, "input": cfg.input.model_dump(exclude={"tables"}),
+                         "tables": [t.model_dump() for t in cfg.tables()], "window": key_window})
 
     warm_from = None
     if cfg.train.warm_start:  # the start depends on the version current now
@@ -258,6 +305,9 @@ def plan_run(cfg: RefreshConfig) -> dict[str, Any]:
         "work": str(work),
         "keep_work_days": cfg.store.keep_work_days,
         "fingerprint": fingerprint,
+        "as_of": as_of.isoformat(),
+        "as_of_source": as_of_source,
+        "run_record": str(record),
         "ingest_dir": str(ingest_dir),
         "graph_dir": graph_dir,
         "walks_dir": walks_dir,
@@ -635,17 +685,37 @@ def run_lock(cfg: RefreshConfig):
         os.umask(old_mask)
 
 
+def begin_run(plan: dict) -> None:
+    """Record the run's ``as_of`` in ``STORE/work/run-<key>.json`` (call it holding the run lock), so that a rerun
+    of the same input after a kill takes the same ``as_of``, finds the same stage folders and resumes."""
+    if plan.get("run_record"):
+        write_json_atomic(plan["run_record"], {"as_of": plan["as_of"], "as_of_source": plan["as_of_source"],
+                                               "started_at": datetime.now(timezone.utc).isoformat(),
+                                               "pid": os.getpid()})
+
+
 def finish_run(plan: dict) -> list[str]:
-    """Remove the run's work folders once its version is published or recorded as failed (the walk corpus can be
-    large), and those of unfinished runs older than ``[store] keep_work_days``. Returns the removed paths."""
+    """Remove the run's work folders and run record once its version is published or recorded as failed (the walk
+    corpus can be large), and the folders and records of unfinished runs older than ``[store] keep_work_days``.
+    Returns the removed paths."""
     removed = []
     for key in ("ingest_dir", "walks_dir", "train_dir", "holdout_dir", "eval_walks_dir", "eval_train_dir"):
         if plan.get(key) and Path(plan[key]).exists():
             shutil.rmtree(plan[key], ignore_errors=True)
             removed.append(plan[key])
+    record = plan.get("run_record")
+    if record and Path(record).exists():
+        Path(record).unlink(missing_ok=True)
+        removed.append(record)
     from .store import clean_work
 
-    return removed + clean_work(plan["store"], older_than_days=plan.get("keep_work_days", 7.0))
+    keep_days = plan.get("keep_work_days", 7.0)
+    cutoff = time.time() - keep_days * 86400.0
+    for stale in sorted(Path(plan["work"]).glob(f"{RUN_RECORD_PREFIX}*.json")):
+        if not stale.is_symlink() and stale.is_file() and stale.stat().st_mtime <= cutoff:
+            stale.unlink(missing_ok=True)
+            removed.append(str(stale))
+    return removed + clean_work(plan["store"], older_than_days=keep_days)
 
 
 def refresh(cfg: RefreshConfig) -> int:
@@ -654,6 +724,7 @@ def refresh(cfg: RefreshConfig) -> int:
     with RUN_CLOCK.span("plan"):
         plan = plan_run(cfg)
     with run_lock(cfg):
+        begin_run(plan)
         ingest = stage_ingest(cfg, plan)
         graph = stage_graph(cfg, plan)
         holdout = stage_holdout(cfg, plan)

@@ -189,6 +189,28 @@ def test_killed_run_leaves_store_whole_and_next_run_publishes(published_copy, st
     assert list((published / "store" / "work").iterdir()) == []
 
 
+def test_killed_nightly_run_resumes_and_leaves_nothing_in_work(tmp_path):
+    """A relative window (decay measured from the run's as_of, no until): the rerun after a kill takes the killed
+    run's as_of from STORE/work, resumes its finished stages, and the finished run leaves STORE/work empty."""
+    root = tmp_path
+    shutil.copy(ROOT / "sample_parquet" / "transfers.parquet", root / "edges.parquet")
+    text = CONFIG.format(**SMALL).replace('weight = "amount"', 'weight = "amount"\ntimestamp = "sent_at"\n'
+                                                                'half_life_days = 7')
+    (root / "nightly.toml").write_text(text)
+    r = run_plain_refresh(root / "nightly.toml", env={"GRAPHKIT_FAULT": "train", "GRAPHKIT_TEST_FAULTS": "1"})
+    assert r.returncode == -9, r.stderr
+    work = root / "store" / "work"
+    [record] = work.glob("run-*.json")
+    as_of = json.loads(record.read_text())["as_of"]
+    assert len(list(work.glob("ingest-*/ingest.json"))) == 1
+    r = run_plain_refresh(root / "nightly.toml")
+    assert r.returncode == 0, r.stderr
+    [row] = list_versions(root / "store")
+    assert row["status"] == "complete" and row["params"]["lineage"]["window"]["as_of"] == as_of
+    assert row["timings"]["ingest"] == row["timings"]["walks"] == 0.0 and row["timings"]["train"] > 0  # resumed
+    assert list(work.iterdir()) == []
+
+
 def test_second_writer_refused_and_stale_lock_ignored(published_copy):
     published = published_copy
     store = published / "store"

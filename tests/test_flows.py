@@ -472,6 +472,9 @@ def test_served_deployment_runs_a_refresh(harness, tmp_path):
     assert run.state.type == StateType.COMPLETED, run.state
     assert [(r["version"], r["is_current"]) for r in list_versions(store)] == [(1, True)]
     assert run.parameters["overrides"][0] == f'store.path="{store}"'
+    # a deployment run's as_of is its scheduled start time, so a retry or a rerun of that run resumes it
+    [row] = list_versions(store)
+    assert datetime.fromisoformat(row["params"]["lineage"]["window"]["as_of"]) == run.expected_start_time
 
 
 def test_a_run_leaves_at_most_its_flow_result_in_prefect_storage(harness, tmp_path):

@@ -5,6 +5,7 @@ w * 0.5 ** (age / half_life).
 """
 
 import os
+from pathlib import Path
 from datetime import datetime, timedelta, timezone
 
 import numpy as np
@@ -114,3 +115,106 @@ def test_bad_input_names_file_and_column(tmp_path, case, match):
     with pytest.raises(EdgeTableError, match=match):
         ingest_tables(tables, tmp_path / "out")
     assert not (tmp_path / "out" / "ingest.json").exists()
+
+
+# ---------------------------------------------------------------------------------------------- as_of and fingerprints
+def _nightly_config(tmp_path, extra=""):
+    """A config with a relative window, as a nightly job has: the last 30 days, decay measured from as_of."""
+    from graphkit.config import load_config
+
+    t0 = datetime(2026, 11, 30, tzinfo=timezone.utc)
+    _w(tmp_path / "e.parquet", s=["a", "b", "c"], t=["b", "c", "a"],
+       at=pa.array([t0 - timedelta(days=d) for d in (1, 2, 3)], pa.timestamp("us", tz="UTC")))
+    (tmp_path / "c.toml").write_text(f'[input]\nedges = "e.parquet"\nsource = "s"\ntarget = "t"\ntimestamp = "at"\n'
+                                     f'last_days = 3650\nhalf_life_days = 30\n{extra}\n[store]\npath = "store"\n')
+    return load_config(tmp_path / "c.toml")
+
+
+def test_as_of_is_fixed_once_per_run_and_a_rerun_resumes_it(tmp_path):
+    from graphkit.pipeline import RESUME_WITHIN_HOURS, begin_run, finish_run, plan_run
+
+    cfg = _nightly_config(tmp_path)
+    t0 = datetime(2026, 12, 1, 2, 0, 7, 123456, tzinfo=timezone.utc)
+    first = plan_run(cfg, now=t0)
+    assert (first["as_of"], first["as_of_source"]) == ("2026-12-01T02:00:07+00:00", "now")  # to the second
+    assert first["window"]["since"] == (t0.replace(microsecond=0) - timedelta(days=3650)).isoformat()
+    # without a record, another moment is another run: other stage folders
+    assert plan_run(cfg, now=t0 + timedelta(seconds=1))["ingest_dir"] != first["ingest_dir"]
+
+    begin_run(first)  # the run starts (under the lock) and records its as_of; then it is killed
+    record = Path(first["run_record"])
+    assert record.parent == cfg.store_path / "work" and record.is_file()
+    rerun = plan_run(cfg, now=t0 + timedelta(hours=RESUME_WITHIN_HOURS - 1))
+    assert (rerun["as_of"], rerun["as_of_source"]) == (first["as_of"], "resumed")
+    assert all(rerun[k] == first[k] for k in ("ingest_dir", "walks_dir", "train_dir", "window"))
+    # a day later it is a new run with a new window, as it is when the input has changed since
+    late = plan_run(cfg, now=t0 + timedelta(hours=RESUME_WITHIN_HOURS + 1))
+    assert late["as_of_source"] == "now" and late["ingest_dir"] != first["ingest_dir"]
+
+    # a deployment run takes its scheduled time, whatever the record says; a config's until wins over both
+    scheduled = datetime(2026, 12, 2, 1, 0, tzinfo=timezone(timedelta(hours=-1)))
+    run = plan_run(cfg, scheduled, now=t0)
+    assert (run["as_of"], run["as_of_source"]) == ("2026-12-02T02:00:00+00:00", "scheduled")
+    (tmp_path / "fixed").mkdir()
+    fixed = _nightly_config(tmp_path / "fixed", "until = 2026-11-30T12:00:00Z")
+    run = plan_run(fixed, scheduled, now=t0)
+    assert (run["as_of"], run["as_of_source"]) == ("2026-11-30T12:00:00+00:00", "until")
+
+    finish_run(first)  # a finished run leaves no record: the next run starts afresh
+    assert not record.exists()
+    assert plan_run(cfg, now=t0 + timedelta(hours=1))["as_of_source"] == "now"
+
+
+def test_as_of_is_in_the_ingest_key_only_where_it_shapes_the_graph(tmp_path):
+    from graphkit.config import load_config
+    from graphkit.pipeline import plan_run
+
+    cfg = _nightly_config(tmp_path)
+    t0 = datetime(2026, 12, 1, tzinfo=timezone.utc)
+    # no window at all: the moment does not matter, a rerun resumes at any time
+    plain = load_config(tmp_path / "c.toml", ["input.last_days=none", "input.half_life_days=none"])
+    assert plan_run(plain, now=t0)["ingest_dir"] == plan_run(plain, now=t0 + timedelta(days=3))["ingest_dir"]
+    # a fixed since, no decay: the window does not move with as_of either
+    since = load_config(tmp_path / "c.toml", ["input.last_days=none", "input.half_life_days=none",
+                                              "input.since=2026-11-01"])
+    assert plan_run(since, now=t0)["ingest_dir"] == plan_run(since, now=t0 + timedelta(days=3))["ingest_dir"]
+    assert plan_run(cfg, now=t0)["ingest_dir"] != plan_run(cfg, now=t0 + timedelta(days=3))["ingest_dir"]
+
+
+def test_fingerprint_sees_any_content_change(tmp_path):
+    from graphkit.io import fingerprint_files
+
+    csv = tmp_path / "e.csv"
+    csv.write_text("s,t\na,b\nb,c\n")
+    st = csv.stat()
+    [fp] = fingerprint_files([csv])
+    assert fp["size"] == st.st_size and fp["mtime_ns"] == st.st_mtime_ns and fp["hashed"] == "full"
+    import hashlib
+    assert fp["sha256"] == hashlib.sha256(csv.read_bytes()).hexdigest()
+    # the same bytes written again with the old mtime: the same fingerprint
+    csv.write_text("s,t\na,b\nb,c\n")
+    os.utime(csv, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert fingerprint_files([csv]) == [fp]
+    # an edit of the same size that keeps the mtime (as cp -p of other content would): the hash sees it
+    csv.write_text("s,t\na,b\nb,d\n")
+    os.utime(csv, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert csv.stat().st_size == fp["size"] and fingerprint_files([csv])[0]["sha256"] != fp["sha256"]
+    # past the hashing budget only the head and tail are hashed; the mtime still tells an edit
+    [big] = fingerprint_files([csv], full_hash_budget=0)
+    assert big["hashed"] == "edges"
+    os.utime(csv, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+    assert fingerprint_files([csv], full_hash_budget=0)[0]["mtime_ns"] != big["mtime_ns"]
+
+
+def test_an_edited_csv_of_the_same_size_is_ingested_again(tmp_path):
+    from graphkit.config import load_config
+    from graphkit.pipeline import plan_run
+
+    (tmp_path / "e.csv").write_text("s,t\na,b\nb,c\n")
+    (tmp_path / "c.toml").write_text('[input]\nedges = "e.csv"\nsource = "s"\ntarget = "t"\n[store]\npath = "st"\n')
+    cfg = load_config(tmp_path / "c.toml")
+    before = plan_run(cfg)["ingest_dir"]
+    st = (tmp_path / "e.csv").stat()
+    (tmp_path / "e.csv").write_text("s,t\na,b\nb,d\n")
+    os.utime(tmp_path / "e.csv", ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert plan_run(cfg)["ingest_dir"] != before

@@ -42,7 +42,7 @@ def test_lineage_of_a_refresh(tmp_path):
     row = json.loads(r.stdout)[0]
     fp = row["input_fingerprint"][0]
     assert fp["path"].endswith("transfers.parquet")
-    assert fp["size"] == (ROOT / "sample_parquet" / "transfers.parquet").stat().st_size and len(fp["tail_sha256"]) == 64
+    assert fp["size"] == (ROOT / "sample_parquet" / "transfers.parquet").stat().st_size and len(fp["sha256"]) == 64
     assert row["params"]["train"]["dim"] == 16 and row["params"]["walks"]["per_node"] == 2  # full resolved config
     assert row["params"]["evaluate"]["labels"] is None and row["params"]["gates"]["min_link_auc"] is None
     assert row["package_version"] == graphkit_version()
