@@ -1,4 +1,4 @@
-"""The nightly deployment: :func:`flows.refresh.refresh_flow` served on a cron schedule in a time zone.
+"""The nightly deployment: :func:`graphkit.flows.refresh.refresh_flow` served on a cron schedule in a time zone.
 
 ``graphkit schedule CONFIG --cron "0 2 * * *" --timezone Europe/Berlin`` calls :func:`serve_nightly`, which checks
 the options, builds the deployment and serves it in this process until it is stopped (Ctrl-C / SIGTERM).
@@ -83,7 +83,7 @@ def build_deployment(config_path, *, cron: str = "0 2 * * *", timezone: str | No
     from prefect.schedules import Cron
     from prefect.types.entrypoint import EntrypointType
 
-    from flows.refresh import refresh_flow
+    from graphkit.flows.refresh import refresh_flow
 
     return refresh_flow.to_deployment(
         name=name, schedules=[Cron(cron, timezone=timezone)],

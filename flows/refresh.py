@@ -30,7 +30,7 @@ from graphkit import pipeline
 from graphkit.config import RefreshConfig, load_config
 from graphkit.errors import GateFailure, InputError
 
-from flows.artifacts import LogProgress, listen, run_markdown, stage_summary
+from graphkit.flows.artifacts import LogProgress, listen, run_markdown, stage_summary
 
 __all__ = ["refresh_flow", "ARTIFACT_KEY", "STAGES"]
 

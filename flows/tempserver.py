@@ -48,7 +48,7 @@ def guard_temporary_server() -> int | None:
     pid = server.server_process.pid
     started = psutil.Process(pid).create_time()
     read_fd, write_fd = os.pipe()  # both ends non-inheritable: no other child keeps the pipe open
-    watchdog = subprocess.Popen([sys.executable, "-m", "flows.tempserver", str(read_fd), str(pid), repr(started)],
+    watchdog = subprocess.Popen([sys.executable, "-m", "graphkit.flows.tempserver", str(read_fd), str(pid), repr(started)],
                                 pass_fds=(read_fd,), start_new_session=True, stdin=subprocess.DEVNULL,
                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     os.close(read_fd)

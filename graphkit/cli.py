@@ -65,13 +65,14 @@ def cmd_refresh(args) -> int:
             with RUN_CLOCK.span("preflight"):
                 preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
             _prefect_env()
-            from flows.artifacts import console_progress
-            from flows.refresh import refresh_flow
-            from flows.tempserver import guard_temporary_server
+            from graphkit.flows.artifacts import console_progress
+            from graphkit.flows.refresh import refresh_flow
+            from graphkit.flows.tempserver import guard_temporary_server
 
             with RUN_CLOCK.span("server_start"):
                 guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
             _quiet_flow_sigterm(guard)
+            _no_tracebacks_for_expected_outcomes()
             before = _latest_version(cfg.store_path)
             with console_progress():  # bars on a terminal only
                 version = refresh_flow(str(Path(args.config).resolve()), list(args.set))
@@ -126,6 +127,29 @@ def _quiet_runner_sigterm(guard) -> None:
     Runner.handle_sigterm = handle_sigterm  # this process only serves; it ends with the command
 
 
+class _ExpectedOutcomeFilter:
+    """Drop the traceback from log records about an expected outcome (bad input, a failed quality gate): the
+    command prints its own one line for those. ``GRAPHKIT_DEBUG=1`` keeps them."""
+
+    def filter(self, record) -> bool:
+        exc = record.exc_info[1] if record.exc_info else None
+        if isinstance(exc, (InputError, GateFailure)):
+            record.exc_info, record.exc_text = None, None
+        return True
+
+
+def _no_tracebacks_for_expected_outcomes() -> None:
+    import logging
+
+    if os.environ.get("GRAPHKIT_DEBUG"):
+        return
+    names = [n for n in logging.Logger.manager.loggerDict if n == "prefect" or n.startswith("prefect.")]
+    for logger in [logging.getLogger(), *map(logging.getLogger, names)]:
+        for handler in logger.handlers:
+            if not any(isinstance(f, _ExpectedOutcomeFilter) for f in handler.filters):
+                handler.addFilter(_ExpectedOutcomeFilter())
+
+
 def cmd_schedule(args) -> int:
     from .config import load_config
     from .interrupt import stop_on_signals
@@ -136,9 +160,10 @@ def cmd_schedule(args) -> int:
             cfg = load_config(args.config, args.set)
             preflight(cfg)
             _prefect_env()
-            from flows.nightly import serve_nightly
-            from flows.tempserver import guard_temporary_server
+            from graphkit.flows.nightly import check_schedule, serve_nightly
+            from graphkit.flows.tempserver import guard_temporary_server
 
+            check_schedule(args.cron, args.timezone, args.name)  # a bad schedule fails before any server starts
             guard_temporary_server()  # stopped after serving has wound down, never by the terminal's Ctrl-C
             _quiet_runner_sigterm(guard)
             serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone,

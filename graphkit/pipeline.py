@@ -562,7 +562,7 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
     figures = _report_figures(cfg, plan)
     rows = list_versions(plan["store"]) if Path(plan["store"], "catalog.duckdb").exists() else []
     # the lock is held: nobody else numbers a version meanwhile
-    version = done_before or max((r["version"] for r in rows), default=0) + 1
+    version = done_before[0] if done_before else max((r["version"] for r in rows), default=0) + 1
     t0 = time.time()
     report = _render_report(cfg, plan, version, graph, figures, rows, status="failed" if reasons else "complete",
                             counts=counts, metrics=metrics, timings=timings, vectors=None if reasons else vectors)

@@ -10,7 +10,16 @@ import duckdb
 
 __all__ = ["SQL_DIR", "load_sql", "work_connection", "quote_ident", "sql_literal", "bind"]
 
-SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
+def _sql_dir() -> Path:
+    """``sql/`` of the source tree (a checkout, an editable install), or its copy ``graphkit/_sql`` in a wheel."""
+    here = Path(__file__).resolve().parent
+    for candidate in (here / "_sql", here.parent / "sql"):
+        if (candidate / "macros.sql").is_file():
+            return candidate
+    raise FileNotFoundError(f"graphkit's SQL files are missing: neither {here / '_sql'} nor {here.parent / 'sql'}")
+
+
+SQL_DIR = _sql_dir()
 
 
 @lru_cache(maxsize=None)

@@ -60,14 +60,16 @@ def cluster():
 
 @pytest.fixture(scope="module")
 def demo_graph(tmp_path_factory):
-    """The demo graph ingested into a store's work folder (plain stage functions, no Prefect)."""
+    """The demo graph ingested into a store's work folder and its holdout graph, the one the published model walks
+    (plain stage functions, no Prefect)."""
     store = tmp_path_factory.mktemp("dask") / "store"
     cfg = load_config(DEMO, [f'store.path="{store}"'])
     plan = pipeline.plan_run(cfg)
     with pipeline.run_lock(cfg):
         pipeline.stage_ingest(cfg, plan)
         pipeline.stage_graph(cfg, plan)
-    return cfg, plan, Path(plan["ingest_dir"]) / "graph"
+        pipeline.stage_holdout(cfg, plan)  # the published model walks the holdout graph by default
+    return cfg, plan, Path(plan["graph_dir"])
 
 
 def _read(corpus_dir) -> np.ndarray:

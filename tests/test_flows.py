@@ -50,7 +50,7 @@ def _client():
 
 def _refresh(store, *overrides):
     """Run the flow in this process; returns its final state (a failed run does not raise here)."""
-    from flows.refresh import refresh_flow
+    from graphkit.flows.refresh import refresh_flow
 
     return refresh_flow(str(DEMO), [f'store.path="{store}"', *overrides], return_state=True)
 
@@ -71,7 +71,7 @@ def _artifacts(flow_run_id=None, store=None) -> list:
     from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId, ArtifactFilterKey
     from prefect.client.schemas.sorting import ArtifactSort
 
-    from flows.refresh import ARTIFACT_KEY
+    from graphkit.flows.refresh import ARTIFACT_KEY
 
     flt = ArtifactFilter(key=ArtifactFilterKey(any_=[ARTIFACT_KEY]))
     if flow_run_id is not None:
@@ -286,7 +286,7 @@ def test_retries_are_for_io_failures_only():
     import duckdb
     from prefect.states import Failed
 
-    from flows.refresh import _io_failure, ingest_task, publish_task, train_task, walks_task
+    from graphkit.flows.refresh import _io_failure, ingest_task, publish_task, train_task, walks_task
     from graphkit.errors import EdgeTableError, GateFailure
 
     for exc, retry in ((OSError("No space left on device"), True), (duckdb.IOException("cannot open"), True),
@@ -299,7 +299,7 @@ def test_retries_are_for_io_failures_only():
 
 # ---------------------------------------------------------------------------------------------------- reporting
 def test_markdown_of_a_failed_run_names_the_error():
-    from flows.artifacts import run_markdown
+    from graphkit.flows.artifacts import run_markdown
 
     md = run_markdown(store="/s", stages={"ingest": {"status": "failed", "seconds": 0.5, "result": None}},
                       error="EdgeTableError: /s/x.parquet: no column 'src'", total_seconds=0.7)
@@ -308,7 +308,7 @@ def test_markdown_of_a_failed_run_names_the_error():
 
 
 def test_figures_are_rounded_to_three_digits_with_a_unit():
-    from flows.artifacts import duration, si
+    from graphkit.flows.artifacts import duration, si
 
     assert [si(x) for x in (7, 999, 29_990, 999_894, 1_199_600, 400e6, 1.5e9)] == \
         ["7", "999", "30k", "1M", "1.2M", "400M", "1.5G"]
@@ -316,7 +316,7 @@ def test_figures_are_rounded_to_three_digits_with_a_unit():
 
 
 def test_log_progress_throttles_and_reports_rate_and_time_left():
-    from flows.artifacts import LogProgress
+    from graphkit.flows.artifacts import LogProgress
 
     lines = []
 
@@ -347,7 +347,7 @@ def test_console_progress_draws_rate_and_time_left():
     from prefect.logging.handlers import PrefectConsoleHandler
     from rich.console import Console
 
-    from flows.artifacts import ConsoleProgress
+    from graphkit.flows.artifacts import ConsoleProgress
 
     # a Prefect console handler (pytest replaces the root logger's handlers, so install one on "prefect" here)
     elsewhere = io.StringIO()
@@ -379,12 +379,12 @@ def test_console_progress_draws_rate_and_time_left():
 def test_build_deployment_has_cron_schedule_in_time_zone():
     from prefect.client.schemas.schedules import CronSchedule
 
-    from flows.nightly import build_deployment
+    from graphkit.flows.nightly import build_deployment
 
     dep = build_deployment(DEMO, cron="0 2 * * *", timezone="Europe/Berlin", name="nightly-test",
                            overrides=["train.dim=32"])
     assert dep.name == "nightly-test" and dep.flow_name == "graphkit-refresh"
-    assert dep.entrypoint == "flows.refresh.refresh_flow"  # importable from any working directory
+    assert dep.entrypoint == "graphkit.flows.refresh.refresh_flow"  # importable from any working directory
     assert dep.parameters == {"config_path": str(DEMO.resolve()), "overrides": ["train.dim=32"]}
     [sched] = dep.schedules
     assert isinstance(sched.schedule, CronSchedule) and sched.active
@@ -392,7 +392,7 @@ def test_build_deployment_has_cron_schedule_in_time_zone():
 
 
 def test_next_three_run_dates_follow_the_time_zone():
-    from flows.nightly import next_run_dates
+    from graphkit.flows.nightly import next_run_dates
 
     start = datetime(2026, 6, 10, 12, 0, tzinfo=timezone.utc)
     dates = next_run_dates("0 2 * * *", "Europe/Berlin", 3, start=start)
@@ -405,7 +405,7 @@ def test_next_three_run_dates_follow_the_time_zone():
 
 
 def test_bad_cron_timezone_or_name_is_a_config_error():
-    from flows.nightly import build_deployment
+    from graphkit.flows.nightly import build_deployment
 
     with pytest.raises(ConfigError, match=r"^--cron: .*got '0 2 \* \*'$"):
         build_deployment(DEMO, cron="0 2 * *", timezone="UTC")
@@ -429,7 +429,7 @@ def test_schedule_command_with_bad_cron_exits_2_fast():
 
 @pytest.mark.parametrize("api_url", [None, "http://127.0.0.1:4200/api"])
 def test_serve_nightly_serves_and_warns_without_a_server(monkeypatch, capsys, api_url):
-    import flows.nightly as nightly
+    import graphkit.flows.nightly as nightly
 
     served = []
     monkeypatch.setattr(nightly, "serve", lambda *deps, **kw: served.append((deps, kw)))
@@ -450,7 +450,7 @@ def test_served_deployment_runs_a_refresh(harness, tmp_path):
     from prefect.deployments import run_deployment
     from prefect.runner import Runner
 
-    from flows.nightly import build_deployment
+    from graphkit.flows.nightly import build_deployment
 
     store = tmp_path / "store"
     dep = build_deployment(DEMO, cron="0 2 * * *", timezone="Europe/Berlin", name="served-test",
