@@ -591,6 +591,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
+    # Dask's scheduler and worker chatter (dozens of INFO lines per run) stays out of the run's log; warnings pass.
+    # Read by dask.config when distributed is first imported; a user's own setting wins.
+    os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

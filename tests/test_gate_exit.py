@@ -28,6 +28,7 @@ def test_gate_failure_exits_3_with_one_line(tmp_path):
     store = tmp_path / "store"
     first = _refresh(store)
     assert first.returncode == 0, first.stderr[-2000:]
+    assert "distributed." not in first.stderr + first.stdout  # no cluster chatter in the run's log
     # only a perfect ranking of every held-out pair reaches 1.0 (the demo measures about 0.8): the gate fails
     r = _refresh(store, "evaluate.link_holdout=0.1", "gates.min_link_auc=1.0")
     assert r.returncode == 3, r.stderr[-2000:]
