@@ -346,30 +346,52 @@ def cmd_export(args) -> int:
     return 0
 
 
-def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None,
-                  kind: str | None = None) -> list[tuple]:
+def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None, kind: str | None = None,
+                  id_kind: str | None = None, salt_env: str | None = None) -> list[tuple]:
     """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; always bound as a parameter).
+
+    ``kind`` keeps only results of that node kind; ``id_kind`` picks the query node when its id exists under
+    several kinds. In a version published with hashed ids (lineage ``hashed_ids``) a raw id is hashed with the key
+    in environment variable ``salt_env`` (default: the run's ``[input] hash_salt_env``, else ``GRAPHKIT_ID_SALT``);
+    a pseudonym given as is is used as is. The results are the store's ids (pseudonyms in a hashed store).
 
     Returns (node_id, node_kind, similarity) tuples, most similar first.
     """
-    from .store import connect
+    from .store import _version_row, connect
 
     con = connect(store, version=version)
     try:
-        kinds = [k for (k,) in con.execute(
-            "select node_kind from embeddings where node_id::varchar = $id and ($kind is null or node_kind = $kind)",
-            {"id": node_id, "kind": kind}).fetchall()]
+        def kinds_of(ident):
+            return [k for (k,) in con.execute(
+                "select node_kind from embeddings where node_id::varchar = $id and ($kind is null or node_kind = $kind)",
+                {"id": ident, "kind": id_kind}).fetchall()]
+
+        query_id, kinds = node_id, kinds_of(node_id)
+        params = _version_row(Path(store), version).get("params") or {}
+        if not kinds and (params.get("lineage") or {}).get("hashed_ids"):
+            from .ids import hash_ids, salt_from_env
+
+            env = salt_env or (params.get("input") or {}).get("hash_salt_env") or "GRAPHKIT_ID_SALT"
+            try:
+                key = salt_from_env(env)
+            except InputError as exc:
+                raise InputError(f"{store}: the version was published with hashed ids; looking up the raw id "
+                                 f"{node_id!r} needs its key: {exc}") from None
+            query_id = hash_ids([node_id], key)[0].as_py()
+            kinds = kinds_of(query_id)
         if not kinds:
             raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings"
-                             + (f" as kind {kind!r}" if kind else ""))
+                             + (f" as kind {id_kind!r}" if id_kind else ""))
         if len(kinds) > 1:
-            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; pass --kind")
+            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; "
+                             "pass --id-kind")
         return con.execute(
-            "with q as (select vector from embeddings where node_id::varchar = $id and node_kind = $kind) "
+            "with q as (select vector from embeddings where node_id::varchar = $id and node_kind = $qkind) "
             "select e.node_id, e.node_kind, array_cosine_similarity(e.vector, q.vector) as similarity "
-            "from embeddings as e, q where not (e.node_id::varchar = $id and e.node_kind = $kind) "
+            "from embeddings as e, q where not (e.node_id::varchar = $id and e.node_kind = $qkind) "
+            "and ($kind is null or e.node_kind = $kind) "
             "order by similarity desc, e.node_id limit $k",
-            {"id": node_id, "kind": kinds[0], "k": int(top)}).fetchall()
+            {"id": query_id, "qkind": kinds[0], "kind": kind, "k": int(top)}).fetchall()
     finally:
         con.close()
 
@@ -377,7 +399,8 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
 def cmd_similar(args) -> int:
     if args.top < 1:
         raise InputError(f"--top must be >= 1, got {args.top}")
-    rows = similar_nodes(args.store, args.node_id, args.top, args.version, args.kind)
+    rows = similar_nodes(args.store, args.node_id, args.top, args.version, kind=args.kind, id_kind=args.id_kind,
+                         salt_env=args.salt_env)
     if args.json:
         print(json.dumps([{"node_id": n, "node_kind": k, "similarity": round(float(s), 6)} for n, k, s in rows],
                          default=str))
@@ -692,7 +715,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("node_id")
     s.add_argument("--top", type=int, default=10)
     s.add_argument("--version", type=int, default=None)
-    s.add_argument("--kind", default=None, help="node kind, when the id exists under several kinds")
+    s.add_argument("--kind", default=None, help="show only results of this node kind")
+    s.add_argument("--id-kind", default=None, metavar="KIND",
+                   help="the kind of the query node, when its id exists under several kinds")
+    s.add_argument("--salt-env", default=None, metavar="NAME",
+                   help="in a store with hashed ids: the environment variable holding the key that hashes the "
+                        "given raw id (default: the run's [input] hash_salt_env, else GRAPHKIT_ID_SALT)")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_similar)
 

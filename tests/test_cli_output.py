@@ -102,3 +102,73 @@ def test_versions_fit_80_columns_with_numbers_intact(tmp_path, capsys, monkeypat
     assert str(big) in tokens and "0.4123456789" in tokens and "CP" in tokens
     assert main(["versions", str(store), "--json"]) == 0
     assert json.loads(capsys.readouterr().out)[0]["metrics"]["link_auc_cosine"] == 0.76634
+
+
+def _kinds_store(tmp_path):
+    s = tmp_path / "kinds"
+    # "7" is an account and a device; the devices lie closest to account 7
+    ids = ["7", "7", "acct-2", "dev-3", "acct-4"]
+    kinds = ["account", "device", "account", "device", "account"]
+    vecs = [[1, 0, 0], [0.99, 0.1, 0], [0.5, 0.5, 0], [0.95, 0.2, 0], [0, 0, 1]]
+    _publish(s, ids, vecs, kinds=kinds)
+    return s
+
+
+def test_similar_kind_filters_the_results_and_id_kind_picks_the_query(tmp_path, capsys):
+    s = _kinds_store(tmp_path)
+    assert main(["similar", str(s), "7"]) == 2
+    assert "--id-kind" in capsys.readouterr().err
+    assert main(["similar", str(s), "7", "--id-kind", "account", "--json"]) == 0
+    hits = json.loads(capsys.readouterr().out)
+    assert [(h["node_id"], h["node_kind"]) for h in hits] == [("7", "device"), ("dev-3", "device"),
+                                                             ("acct-2", "account"), ("acct-4", "account")]
+    assert main(["similar", str(s), "7", "--id-kind", "account", "--kind", "account", "--json"]) == 0
+    hits = json.loads(capsys.readouterr().out)
+    assert [h["node_id"] for h in hits] == ["acct-2", "acct-4"]  # the query node itself is never a result
+    assert hits[0]["similarity"] == pytest.approx(0.5 / np.sqrt(0.5), abs=1e-5)  # cos([1,0,0],[.5,.5,0])
+    assert main(["similar", str(s), "acct-2", "--kind", "device", "--top", "1"]) == 0
+    out = capsys.readouterr().out.split()
+    assert out[:2] == ["dev-3", "device"]  # acct-2's kind is not a filter on the results
+    assert main(["similar", str(s), "acct-2", "--id-kind", "device"]) == 2
+    assert "as kind 'device'" in capsys.readouterr().err
+
+
+def test_raw_id_lookup_in_a_hashed_store(tmp_path, capsys, monkeypatch):
+    import hashlib
+    import hmac
+
+    key = "a-salt-of-twenty-chars"
+
+    def pseudonym(raw):  # the standard library's HMAC-SHA256, independent of graphkit.ids
+        return hmac.new(key.encode(), raw.encode(), hashlib.sha256).hexdigest()
+
+    s = tmp_path / "hashed"
+    raw = ["acct-1", "acct-2", "acct-3"]
+    _publish(s, [pseudonym(r) for r in raw], [[1, 0], [0.8, 0.6], [0, 1]],
+             params={"input": {"hash_salt_env": "SHOP_ID_KEY"}, "lineage": {"hashed_ids": True}})
+    monkeypatch.delenv("SHOP_ID_KEY", raising=False)
+    monkeypatch.delenv("GRAPHKIT_ID_SALT", raising=False)
+    assert main(["similar", str(s), "acct-1"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "hashed ids" in err and "SHOP_ID_KEY" in err
+    monkeypatch.setenv("SHOP_ID_KEY", key)
+    assert main(["similar", str(s), "acct-1", "--json"]) == 0
+    hits = json.loads(capsys.readouterr().out)
+    assert [h["node_id"] for h in hits] == [pseudonym("acct-2"), pseudonym("acct-3")]  # pseudonyms printed
+    assert hits[0]["similarity"] == pytest.approx(0.8, abs=1e-6)
+    # a pseudonym from the results can be looked up as is, without the key
+    monkeypatch.delenv("SHOP_ID_KEY")
+    assert main(["similar", str(s), pseudonym("acct-3"), "--top", "1"]) == 0
+    assert capsys.readouterr().out.split()[0] == pseudonym("acct-2")
+    # --salt-env names another variable; a wrong key finds nothing (exit 2, one line)
+    monkeypatch.setenv("OTHER_KEY", key)
+    assert main(["similar", str(s), "acct-1", "--salt-env", "OTHER_KEY", "--top", "1"]) == 0
+    assert capsys.readouterr().out.split()[0] == pseudonym("acct-2")
+    monkeypatch.setenv("OTHER_KEY", "not-the-right-key-at-all")
+    assert main(["similar", str(s), "acct-1", "--salt-env", "OTHER_KEY"]) == 2
+    assert "'acct-1' is not in" in capsys.readouterr().err
+    # without hashed ids in the lineage, a raw id is never hashed
+    plain = tmp_path / "plain"
+    _publish(plain, [pseudonym(r) for r in raw], np.eye(3))
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", key)
+    assert main(["similar", str(plain), "acct-1"]) == 2
