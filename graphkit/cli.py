@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import signal
 import sys
 from pathlib import Path
@@ -543,7 +544,7 @@ def cmd_sql(args) -> int:
     return 0
 
 
-_SHOW_TABLES = __import__("re").compile(r"\s*show\s+tables\s*;?\s*", __import__("re").IGNORECASE)
+_SHOW_TABLES = re.compile(r"\s*show\s+tables\s*;?\s*", re.IGNORECASE)
 #: Rows fetched at a time for CSV and JSON (the result is never held whole).
 _FETCH = 10_000
 #: Widest cell of the table format (longer text, e.g. a vector, ends in "...").
