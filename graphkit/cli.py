@@ -257,7 +257,8 @@ def compact_versions(rows, store) -> str:
         return "  ".join(c.rjust(w) if i in right else c.ljust(w)
                          for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
 
-    out = [f"versions in {store}", line(heads), line(["-" * w for w in widths]), *map(line, body)]
+    title = f"versions in {store}"
+    out = [title if len(title) <= 80 else f"versions in .../{Path(store).name}", line(heads), line(["-" * w for w in widths]), *map(line, body)]
     if not rows:
         out.append("(no versions yet)")
     out.append("C current, P pinned; total s: the whole command; --wide, --json: all")

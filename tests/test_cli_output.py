@@ -96,7 +96,7 @@ def test_versions_fit_80_columns_with_numbers_intact(tmp_path, capsys, monkeypat
                          "and link_auc_cosine = 0.61 is below [gates] min_link_auc = 0.7")]
     from graphkit.cli import compact_versions
 
-    text = compact_versions(rows, store)
+    text = compact_versions(rows, tmp_path / ("a-long-folder-name-" * 5) / "store")
     assert all(len(ln) <= 80 for ln in text.splitlines()), text
     tokens = text.split()
     assert str(big) in tokens and "0.4123456789" in tokens and "CP" in tokens
