@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import signal
 import sys
 from pathlib import Path
@@ -193,6 +194,9 @@ def cmd_versions(args) -> int:
     if args.json:
         print(json.dumps([_jsonable(r) for r in rows], indent=2, default=str))
         return 0
+    if not args.wide:
+        print(compact_versions(rows, args.store))
+        return 0
     from rich.console import Console
     from rich.table import Table
 
@@ -219,6 +223,50 @@ def cmd_versions(args) -> int:
                       r.get("message") or "")
     Console(width=max(160, Console().width)).print(table)
     return 0
+
+
+#: The headline metrics of the compact ``versions`` table: (column, metric key).
+HEADLINE_METRICS = (("AUC", "link_auc_cosine"), ("F1@10", "micro_f1_at_10"))
+
+
+def compact_versions(rows, store) -> str:
+    """The versions as a plain table that fits 80 columns: no cell is ever cut or wrapped, the message of a failed
+    version follows the table, wrapped at spaces. ``--wide`` and ``--json`` show everything."""
+    import textwrap
+
+    heads = ["ver", "status", "", "created (UTC)", "nodes", "dim", "total s"]
+    metric_cols = [(h, k) for h, k in HEADLINE_METRICS if any(k in (r.get("metrics") or {}) for r in rows)]
+    heads += [h for h, _ in metric_cols]
+    body = []
+    for r in rows:
+        metrics = r.get("metrics") or {}
+        total = sum(v for v in (r.get("timings") or {}).values()
+                    if isinstance(v, (int, float)) and not isinstance(v, bool))
+        marks = ("C" if r["is_current"] else "") + ("P" if r["pinned"] else "")
+        cells = [str(r["version"]), r["status"], marks, str(r["created_at"])[:16],
+                 "" if r["n_nodes"] is None else str(r["n_nodes"]), "" if r["dim"] is None else str(r["dim"]),
+                 f"{total:.1f}"]
+        for _, k in metric_cols:
+            v = metrics.get(k)
+            cells.append(f"{v:.3f}" if isinstance(v, (int, float)) and not isinstance(v, bool) else "")
+        body.append(cells)
+    right = {0, 4, 5, 6, *range(7, len(heads))}
+    widths = [max(len(c) for c in col) for col in zip(heads, *body)]
+
+    def line(cells):
+        return "  ".join(c.rjust(w) if i in right else c.ljust(w)
+                         for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+
+    title = f"versions in {store}"
+    out = [title if len(title) <= 80 else f"versions in .../{Path(store).name}", line(heads), line(["-" * w for w in widths]), *map(line, body)]
+    if not rows:
+        out.append("(no versions yet)")
+    out.append("C current, P pinned; total s: the whole command; --wide, --json: all")
+    for r in rows:
+        if r["status"] != "complete" and r.get("message"):
+            out += textwrap.wrap(f"version {r['version']} {r['status']}: {r['message']}", width=80,
+                                 subsequent_indent="  ", break_long_words=False, break_on_hyphens=False)
+    return "\n".join(out)
 
 
 #: Folders of a store that only the store writes (an export may not land there).
@@ -300,30 +348,52 @@ def cmd_export(args) -> int:
     return 0
 
 
-def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None,
-                  kind: str | None = None) -> list[tuple]:
+def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None, kind: str | None = None,
+                  id_kind: str | None = None, salt_env: str | None = None) -> list[tuple]:
     """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; always bound as a parameter).
+
+    ``kind`` keeps only results of that node kind; ``id_kind`` picks the query node when its id exists under
+    several kinds. In a version published with hashed ids (lineage ``hashed_ids``) a raw id is hashed with the key
+    in environment variable ``salt_env`` (default: the run's ``[input] hash_salt_env``, else ``GRAPHKIT_ID_SALT``);
+    a pseudonym given as is is used as is. The results are the store's ids (pseudonyms in a hashed store).
 
     Returns (node_id, node_kind, similarity) tuples, most similar first.
     """
-    from .store import connect
+    from .store import _version_row, connect
 
     con = connect(store, version=version)
     try:
-        kinds = [k for (k,) in con.execute(
-            "select node_kind from embeddings where node_id::varchar = $id and ($kind is null or node_kind = $kind)",
-            {"id": node_id, "kind": kind}).fetchall()]
+        def kinds_of(ident):
+            return [k for (k,) in con.execute(
+                "select node_kind from embeddings where node_id::varchar = $id and ($kind is null or node_kind = $kind)",
+                {"id": ident, "kind": id_kind}).fetchall()]
+
+        query_id, kinds = node_id, kinds_of(node_id)
+        params = _version_row(Path(store), version).get("params") or {}
+        if not kinds and (params.get("lineage") or {}).get("hashed_ids"):
+            from .ids import hash_ids, salt_from_env
+
+            env = salt_env or (params.get("input") or {}).get("hash_salt_env") or "GRAPHKIT_ID_SALT"
+            try:
+                key = salt_from_env(env)
+            except InputError as exc:
+                raise InputError(f"{store}: the version was published with hashed ids; looking up the raw id "
+                                 f"{node_id!r} needs its key: {exc}") from None
+            query_id = hash_ids([node_id], key)[0].as_py()
+            kinds = kinds_of(query_id)
         if not kinds:
             raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings"
-                             + (f" as kind {kind!r}" if kind else ""))
+                             + (f" as kind {id_kind!r}" if id_kind else ""))
         if len(kinds) > 1:
-            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; pass --kind")
+            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; "
+                             "pass --id-kind")
         return con.execute(
-            "with q as (select vector from embeddings where node_id::varchar = $id and node_kind = $kind) "
+            "with q as (select vector from embeddings where node_id::varchar = $id and node_kind = $qkind) "
             "select e.node_id, e.node_kind, array_cosine_similarity(e.vector, q.vector) as similarity "
-            "from embeddings as e, q where not (e.node_id::varchar = $id and e.node_kind = $kind) "
+            "from embeddings as e, q where not (e.node_id::varchar = $id and e.node_kind = $qkind) "
+            "and ($kind is null or e.node_kind = $kind) "
             "order by similarity desc, e.node_id limit $k",
-            {"id": node_id, "kind": kinds[0], "k": int(top)}).fetchall()
+            {"id": query_id, "qkind": kinds[0], "kind": kind, "k": int(top)}).fetchall()
     finally:
         con.close()
 
@@ -331,7 +401,8 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
 def cmd_similar(args) -> int:
     if args.top < 1:
         raise InputError(f"--top must be >= 1, got {args.top}")
-    rows = similar_nodes(args.store, args.node_id, args.top, args.version, args.kind)
+    rows = similar_nodes(args.store, args.node_id, args.top, args.version, kind=args.kind, id_kind=args.id_kind,
+                         salt_env=args.salt_env)
     if args.json:
         print(json.dumps([{"node_id": n, "node_kind": k, "similarity": round(float(s), 6)} for n, k, s in rows],
                          default=str))
@@ -444,17 +515,123 @@ def cmd_sql(args) -> int:
         if not eq or not name.strip().isidentifier():
             raise InputError(f"--param {item!r}: expected NAME=VALUE")
         params[name.strip()] = value
+    out = output_file(args.out, formats={Path(args.out).suffix.lower(): args.format}, store=args.store)[0] \
+        if args.out is not None else None
+    if _SHOW_TABLES.fullmatch(query):
+        # the connection's temporary views shadow the catalog's views of the same names: list each name once
+        query = "select distinct name from (show tables) order by name"
     con = connect(args.store)
     try:
         try:
-            rel = con.sql(query, params=params or None)
-            if rel is not None:
-                rel.show(max_rows=args.max_rows, max_width=10_000)
+            rel = con.execute(query, params) if params else con.execute(query)
+            if rel.description is None:  # a statement without a result
+                return 0
+            if out is None:
+                _write_result(rel, sys.stdout, args.format, args.max_rows)
+                return 0
+            make_parent(out)
+            tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
+            try:
+                with open(tmp, "w", newline="", encoding="utf-8") as fh:
+                    n = _write_result(rel, fh, args.format, args.max_rows)
+                os.replace(tmp, out)
+            finally:
+                tmp.unlink(missing_ok=True)
         except duckdb.Error as exc:
             raise InputError(_sql_error(exc)) from None
     finally:
         con.close()
+    print(f"wrote {n} rows to {out}")
     return 0
+
+
+_SHOW_TABLES = re.compile(r"\s*show\s+tables\s*;?\s*", re.IGNORECASE)
+#: Rows fetched at a time for CSV and JSON (the result is never held whole).
+_FETCH = 10_000
+#: Widest cell of the table format (longer text, e.g. a vector, ends in "...").
+_CELL = 40
+
+
+def _json_value(v):
+    """A query value as JSON: dates ISO, lists as arrays, non-finite floats as null."""
+    import datetime as dt
+    import decimal
+    import math
+
+    if v is None or isinstance(v, (bool, int, str)):
+        return v
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
+    if isinstance(v, decimal.Decimal):
+        return _json_value(float(v))
+    if isinstance(v, (dt.date, dt.time, dt.datetime)):
+        return v.isoformat()
+    if isinstance(v, (list, tuple)):
+        return [_json_value(x) for x in v]
+    if isinstance(v, dict):
+        return {str(k): _json_value(x) for k, x in v.items()}
+    if isinstance(v, (bytes, bytearray)):
+        return bytes(v).hex()
+    return str(v)  # UUID, interval, ...
+
+
+def _text_value(v) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, float):  # the shortest exact text, or six significant digits when that is long
+        return r if len(r := repr(v)) <= 10 else f"{v:.6g}"
+    if isinstance(v, (list, tuple, dict)):
+        return json.dumps(_json_value(v), separators=(",", ":"))
+    j = _json_value(v)
+    return j if isinstance(j, str) else json.dumps(j)
+
+
+def _write_result(rel, fh, fmt: str, max_rows: int) -> int:
+    """Write a query's result to ``fh`` as a plain table (at most ``max_rows`` rows), CSV or JSON (every row);
+    returns the rows written."""
+    names = [d[0] for d in rel.description]
+    if fmt == "csv":
+        import csv
+
+        w, n = csv.writer(fh), 0
+        w.writerow(names)
+        while batch := rel.fetchmany(_FETCH):
+            w.writerows([repr(v) if isinstance(v, float) else _text_value(v) for v in row] for row in batch)
+            n += len(batch)
+        return n
+    if fmt == "json":
+        fh.write("[")
+        n = 0
+        while batch := rel.fetchmany(_FETCH):
+            for row in batch:
+                fh.write(("," if n else "") + "\n" + json.dumps(dict(zip(names, map(_json_value, row))),
+                                                               allow_nan=False))
+                n += 1
+        fh.write("\n]\n" if n else "]\n")
+        return n
+    rows = rel.fetchmany(max_rows + 1)
+    more = len(rows) > max_rows
+    rows = rows[:max_rows]
+
+    def cell(v):
+        t = "NULL" if v is None else _text_value(v).replace("\n", " ")
+        return t if len(t) <= _CELL else t[:_CELL - 3] + "..."
+
+    body = [[cell(v) for v in row] for row in rows]
+    numeric = [all(isinstance(row[i], (int, float)) and not isinstance(row[i], bool) for row in rows
+                   if row[i] is not None) and rows != [] for i in range(len(names))]
+    widths = [max([len(n)] + [len(r[i]) for r in body]) for i, n in enumerate(names)]
+
+    def line(cells):
+        return "  ".join(c.rjust(w) if numeric[i] else c.ljust(w)
+                         for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+
+    fh.write(line(names) + "\n" + line(["-" * w for w in widths]) + "\n")
+    for r in body:
+        fh.write(line(r) + "\n")
+    note = f"({len(body)} row{'s' if len(body) != 1 else ''}"
+    fh.write(note + (f" shown; more not shown, see --max-rows)" if more else ")") + "\n")
+    return len(body)
 
 
 #: DuckDB's words for a statement the read-only, file-less connection (``store.connect``) refuses.
@@ -524,6 +701,8 @@ def build_parser() -> argparse.ArgumentParser:
     v = sub.add_parser("versions", help="list the versions in a store")
     v.add_argument("store")
     v.add_argument("--json", action="store_true", help="print a JSON array, one object per version")
+    v.add_argument("--wide", action="store_true",
+                   help="every column (stage and fixed seconds, all metrics, messages) in a wide table")
     v.set_defaults(func=cmd_versions)
 
     e = sub.add_parser("export", help="write a version's vectors to a Parquet or CSV file")
@@ -538,7 +717,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("node_id")
     s.add_argument("--top", type=int, default=10)
     s.add_argument("--version", type=int, default=None)
-    s.add_argument("--kind", default=None, help="node kind, when the id exists under several kinds")
+    s.add_argument("--kind", default=None, help="show only results of this node kind")
+    s.add_argument("--id-kind", default=None, metavar="KIND",
+                   help="the kind of the query node, when its id exists under several kinds")
+    s.add_argument("--salt-env", default=None, metavar="NAME",
+                   help="in a store with hashed ids: the environment variable holding the key that hashes the "
+                        "given raw id (default: the run's [input] hash_salt_env, else GRAPHKIT_ID_SALT)")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_similar)
 
@@ -583,7 +767,13 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--file", help="read the query from this .sql file (e.g. one of sql/examples/)")
     q.add_argument("--param", action="append", default=[], metavar="NAME=VALUE",
                    help="bind $NAME in the query to VALUE, as text (repeatable)")
-    q.add_argument("--max-rows", type=_positive_int, default=40, help="rows shown at most (default 40)")
+    q.add_argument("--format", choices=("table", "csv", "json"), default="table",
+                   help="table (plain text, default), csv (a header row; lists as JSON text) or json (an array of "
+                        "objects)")
+    q.add_argument("--out", default=None, metavar="FILE",
+                   help="write the result to FILE (replaced whole, never half-written) instead of the screen")
+    q.add_argument("--max-rows", type=_positive_int, default=40,
+                   help="rows shown at most by --format table (default 40); csv and json write every row")
     q.set_defaults(func=cmd_sql)
     return p
 

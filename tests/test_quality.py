@@ -97,7 +97,7 @@ def test_good_run_passes_gates_and_records_metrics(planted):
     assert 0.5 * hm < m["link_auc_cosine_se"] < 2 * hm
     assert "eval_walks" not in row["timings"] and row["timings"]["holdout"] > 0  # one pass
     assert (planted / "store" / "reports" / f"version-{version:06d}.html").exists()
-    out = subprocess.run([sys.executable, "-m", "graphkit.cli", "versions", str(planted / "store")],
+    out = subprocess.run([sys.executable, "-m", "graphkit.cli", "versions", str(planted / "store"), "--wide"],
                          capture_output=True, text=True, cwd=ROOT)
     assert "link_auc_cosine=" in out.stdout and "micro_f1_at_10=" in out.stdout
 
@@ -162,7 +162,7 @@ def test_versions_command_shows_stages_and_fixed_costs(tmp_path, capsys):
     store = tmp_path / "store"
     publish_embeddings(store, pa.array([1, 2, 3]), np.eye(3, dtype=np.float32), params={}, fingerprint=[],
                        counts={}, timings={"startup": 2.0, "walks": 3.0, "train": 4.0, "report": 1.0})
-    assert main(["versions", str(store)]) == 0
+    assert main(["versions", str(store), "--wide"]) == 0
     out = capsys.readouterr().out
     # the store adds its own "publish" seconds: stages 7 + publish, fixed 3
     row = list_versions(store)[0]["timings"]
