@@ -247,7 +247,8 @@ def test_recorded_timings_add_up_to_the_command(tmp_path):
     reference clock here), to its exit as seen by this process; the interpreter's start-up before any graphkit
     code runs is thus inside it, and the run measures it the same way (``startup``). What follows the version row
     (cleanup, the server's stop, the interpreter's exit) is recorded as ``after_publish_estimate``: the first run
-    uses the default, the second the first run's measurement, which is why the second run is the checked one.
+    uses the default, the second the first run's measurement. The check: the second row's own entries plus the
+    tail that run measured after its row add up to its wall time.
     """
     import json
 
@@ -259,27 +260,38 @@ def test_recorded_timings_add_up_to_the_command(tmp_path):
     env = {k: v for k, v in os.environ.items() if k not in ("PREFECT_API_URL", "GRAPHKIT_FAULT")}
     args = [sys.executable, "-m", "graphkit.cli", "refresh", str(DEMO), "--set", f'store.path="{store}"',
             *[a for o in FAST_DEMO for a in ("--set", o)]]
-    walls = []
+    tail = store / "reports" / pipeline.TAIL_FILE
+
+    def measured_tail(previous=None):
+        # the detached helper writes a run's tail a moment after that process ended
+        for _ in range(100):
+            if tail.exists():
+                value = json.loads(tail.read_text()).get("command")
+                if value is not None and value != previous:
+                    return value
+            time.sleep(0.1)
+        raise AssertionError(f"no after-publish measurement in {tail}")
+
+    walls, tails = [], []
     for _ in range(2):
         proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=ROOT)
         started = psutil.Process(proc.pid).create_time()
         out, err = proc.communicate(timeout=600)
         walls.append(time.time() - started)
         assert proc.returncode == 0, err[-3000:]
-    tail = store / "reports" / pipeline.TAIL_FILE
-    for _ in range(50):  # the helper writes the first run's tail a moment after that process ended
-        if tail.exists() and "command" in json.loads(tail.read_text()):
-            break
-        time.sleep(0.1)
+        tails.append(measured_tail(tails[-1] if tails else None))
     rows = list_versions(store)
     first, second = rows[-2]["timings"], rows[-1]["timings"]
     assert first["after_publish_estimate"] == pipeline.DEFAULT_TAIL_SECONDS["command"]
-    assert second["after_publish_estimate"] != first["after_publish_estimate"]  # measured by the first run
+    assert second["after_publish_estimate"] == tails[0]  # the estimate is the previous run's measurement
     for name in ("startup", "preflight", "server_start", "plan", "lock_wait", "ingest", "graph", "walks", "train",
                  "evaluate", "report", "publish", "orchestration"):
         assert name in second, name
-    total = sum(second.values())
-    assert abs(total - walls[1]) <= 0.05 * walls[1], (total, walls, second)
+    # The accounting: what the row records before it is written, plus the tail this run measured after it, is the
+    # command's wall time. (The estimate in the row is the previous run's tail; how close two runs' tails are
+    # depends on the machine's load, so it is not what this test checks.)
+    total = sum(second.values()) - second["after_publish_estimate"] + tails[1]
+    assert abs(total - walls[1]) <= 0.05 * walls[1], (total, walls, tails, second)
 
 
 def test_retries_are_for_io_failures_only():
