@@ -150,42 +150,51 @@ def store_lock(store, *, wait: float = 0.0, purpose: str = "refresh"):
     """
     store = Path(store)
     store.mkdir(parents=True, exist_ok=True, mode=0o755)
-    with _HELD_GUARD:
-        entry = _held_here(store)
-        if entry is not None:
-            entry[2] += 1
-    if entry is not None:
-        try:
-            yield
-        finally:
-            with _HELD_GUARD:
-                entry[2] -= 1
-        return
     path = store / _LOCK
-    try:
-        fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
-    except OSError as exc:  # ELOOP: a symlink planted where the lock belongs is never followed
-        raise StoreError(f"{path}: cannot open the store lock ({exc.strerror}); a symlink there is refused") from None
     key = str(store.resolve())
-    old_mask = os.umask(0o022)  # nothing in the store is group- or world-writable, whatever the caller's umask
-    try:
-        _take_flock(fd, store, float(wait))
-        os.ftruncate(fd, 0)
-        os.pwrite(fd, f"{os.getpid()} {purpose}".encode(), 0)
-        entry = [os.getpid(), fd, 1]
+    start, outer = time.monotonic(), False
+    while True:
+        # Taking and releasing happen under one guard, so that another thread of this process never sees the
+        # flock taken but not yet registered (or unregistered but not yet released) and refuses itself.
         with _HELD_GUARD:
-            _HELD[key] = entry
-        try:
-            yield
-        finally:
-            with _HELD_GUARD:
-                entry[2] -= 1
+            entry = _held_here(store)
+            if entry is not None:
+                entry[2] += 1
+                break
+            try:
+                fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
+            except OSError as exc:  # ELOOP: a symlink planted where the lock belongs is never followed
+                raise StoreError(f"{path}: cannot open the store lock ({exc.strerror}); a symlink there is "
+                                 "refused") from None
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                holder = _lock_holder(fd)
+                os.close(fd)
+            else:
+                os.ftruncate(fd, 0)
+                os.pwrite(fd, f"{os.getpid()} {purpose}".encode(), 0)
+                entry = [os.getpid(), fd, 1]
+                _HELD[key] = entry
+                outer = True
+                break
+        elapsed = time.monotonic() - start
+        if elapsed >= float(wait) and (holder is not None or elapsed >= _HOLDER_SETTLE_SECONDS):
+            raise StoreError(_held_message(store, holder, float(wait)))
+        time.sleep(0.02)
+    old_mask = os.umask(0o022) if outer else None  # nothing in the store is group- or world-writable
+    try:
+        yield
+    finally:
+        with _HELD_GUARD:
+            entry[2] -= 1
+            if entry[2] == 0:  # the last holder in this process releases the flock
                 if _HELD.get(key) is entry:
                     del _HELD[key]
-            os.ftruncate(fd, 0)  # a released lock names nobody, so a later refusal cannot name a stale pid
-    finally:
-        os.close(fd)  # closing releases the flock; a killed owner's lock vanishes with its process
-        os.umask(old_mask)
+                os.ftruncate(entry[1], 0)  # a released lock names nobody, so a later refusal cannot name a stale pid
+                os.close(entry[1])  # closing releases the flock; a killed owner's lock vanishes with its process
+        if old_mask is not None:
+            os.umask(old_mask)
 
 
 def check_store_writable(store) -> None:
