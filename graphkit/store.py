@@ -34,7 +34,6 @@ from typing import Any
 import duckdb
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import StoreError
