@@ -118,11 +118,16 @@ def _take_flock(fd, store, wait: float) -> None:
             return
         except BlockingIOError:
             pass
-        holder = _lock_holder(fd)
-        elapsed = time.monotonic() - start
-        if elapsed >= wait and (holder is not None or elapsed >= _HOLDER_SETTLE_SECONDS):
-            raise StoreError(_held_message(store, holder, wait)) from None
+        _refuse_when_due(store, _lock_holder(fd), start, wait)
         time.sleep(0.02)
+
+
+def _refuse_when_due(store, holder, start: float, wait: float) -> None:
+    """Raise ``StoreError`` naming ``holder`` once ``wait`` seconds have passed since ``start`` and the holder is
+    known, or ``_HOLDER_SETTLE_SECONDS`` have passed without it being known."""
+    elapsed = time.monotonic() - start
+    if elapsed >= wait and (holder is not None or elapsed >= _HOLDER_SETTLE_SECONDS):
+        raise StoreError(_held_message(store, holder, wait)) from None
 
 
 def _held_here(store: Path):
@@ -177,9 +182,7 @@ def store_lock(store, *, wait: float = 0.0, purpose: str = "refresh"):
                 _HELD[key] = entry
                 outer = True
                 break
-        elapsed = time.monotonic() - start
-        if elapsed >= float(wait) and (holder is not None or elapsed >= _HOLDER_SETTLE_SECONDS):
-            raise StoreError(_held_message(store, holder, float(wait)))
+        _refuse_when_due(store, holder, start, float(wait))
         time.sleep(0.02)
     old_mask = os.umask(0o022) if outer else None  # nothing in the store is group- or world-writable
     try:

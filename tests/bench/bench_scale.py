@@ -54,12 +54,17 @@ def parse_size(text: str) -> int:
     return int(float(text.rstrip("km")) * factor)
 
 
+def _kept(path: Path, meta: Path, spec: dict) -> bool:
+    """True when ``path`` was written by an earlier run from the same ``spec`` (recorded beside it in ``meta``)."""
+    return path.exists() and meta.exists() and json.loads(meta.read_text()) == spec
+
+
 def make_graph(folder: Path, n_nodes: int, degree: int, seed: int = 0) -> Path:
     """Write the uniform random edge table (kept across runs: same size and seed, same file)."""
     path = folder / "edges.parquet"
     meta = folder / "edges.json"
     spec = {"n_nodes": n_nodes, "degree": degree, "seed": seed, "generator": "uniform pairs, numpy PCG64"}
-    if path.exists() and meta.exists() and json.loads(meta.read_text()) == spec:
+    if _kept(path, meta, spec):
         return path
     folder.mkdir(parents=True, exist_ok=True)
     n_edges = n_nodes * degree // 2
@@ -82,7 +87,7 @@ def make_second_night(folder: Path, first: Path, n_nodes: int, share: float = 0.
     path = folder / "edges-night2.parquet"
     meta = folder / "edges-night2.json"
     spec = {"from": first.name, "share": share, "seed": seed, "n_nodes": n_nodes}
-    if path.exists() and meta.exists() and json.loads(meta.read_text()) == spec:
+    if _kept(path, meta, spec):
         return path
     rng = np.random.default_rng(seed)
     n_new = max(1, n_nodes // 1000)
