@@ -12,6 +12,8 @@ The server runs in a session and process group of its own. A terminal's Ctrl-C s
 foreground process group; were the server in it, it would die at the same moment as the flow, and the flow's
 last calls (recording the run as crashed) would retry a dead API for minutes. Out of the group, the server is
 stopped only after the flow has wound down: by Prefect at exit, or by the watchdog when the process is gone.
+Its output goes to ``temporary-server.log`` in Prefect's home directory (:func:`server_log_path`), not to the
+command's terminal.
 """
 
 from __future__ import annotations
@@ -20,9 +22,10 @@ import os
 import subprocess
 import sys
 
-__all__ = ["guard_temporary_server"]
+__all__ = ["guard_temporary_server", "server_log_path"]
 
 _STOP_TIMEOUT = 5.0
+_LOG_KEEP_BYTES = 8 << 20
 _KEEP: list[int] = []  # the pipe's write end, open for the life of the process
 
 
@@ -65,7 +68,27 @@ class _OwnSessionSubprocess:
     @staticmethod
     def Popen(*args, **kwargs):  # noqa: N802 - the name it stands in for
         kwargs["start_new_session"] = True
+        if kwargs.get("stdout") is None and kwargs.get("stderr") is None:
+            # The server's own log goes to a file beside its database, not to the command's terminal: after a
+            # stop it logs each database call the stop cancelled, with a traceback, after the command's last line.
+            path = server_log_path()
+            keep = path.exists() and path.stat().st_size < _LOG_KEEP_BYTES  # started afresh once it is large
+            log = open(path, "ab" if keep else "wb")  # noqa: SIM115 - handed to the child, closed below
+            try:
+                kwargs["stdout"] = kwargs["stderr"] = log
+                return subprocess.Popen(*args, **kwargs)
+            finally:
+                log.close()
         return subprocess.Popen(*args, **kwargs)
+
+
+def server_log_path():
+    """Where the temporary server's output goes: ``temporary-server.log`` in Prefect's home directory."""
+    from prefect.settings import get_current_settings
+
+    home = get_current_settings().home
+    home.mkdir(parents=True, exist_ok=True)
+    return home / "temporary-server.log"
 
 
 def _in_own_session(server) -> None:

@@ -1,0 +1,42 @@
+"""The temporary Prefect server's process: own session, output to a log file rather than the terminal."""
+
+import os
+import subprocess
+import sys
+
+from prefect.settings import PREFECT_HOME, temporary_settings
+
+from graphkit.flows.tempserver import _LOG_KEEP_BYTES, _OwnSessionSubprocess, server_log_path
+
+CHILD = "import os, sys; sys.stderr.write('server says %d\\n' % os.getsid(0)); print('out line')"
+
+
+def test_server_output_goes_to_its_log_file_not_the_terminal(tmp_path):
+    with temporary_settings(updates={PREFECT_HOME: tmp_path / "home"}):
+        path = server_log_path()
+        proc = _OwnSessionSubprocess.Popen([sys.executable, "-c", CHILD])
+        assert proc.wait(timeout=60) == 0
+        text = path.read_text()
+        assert "out line" in text and "server says" in text
+        child_sid = int(text.split("server says ")[1].split()[0])
+        assert child_sid != os.getsid(0)  # its own session: the terminal's Ctrl-C does not reach it
+        proc = _OwnSessionSubprocess.Popen([sys.executable, "-c", CHILD])  # a second run appends
+        proc.wait(timeout=60)
+        assert path.read_text().count("out line") == 2
+
+
+def test_server_log_starts_afresh_once_large(tmp_path):
+    with temporary_settings(updates={PREFECT_HOME: tmp_path / "home"}):
+        path = server_log_path()
+        path.write_bytes(b"x" * (_LOG_KEEP_BYTES + 1))
+        _OwnSessionSubprocess.Popen([sys.executable, "-c", CHILD]).wait(timeout=60)
+        assert path.stat().st_size < 1000 and "out line" in path.read_text()
+
+
+def test_output_already_redirected_is_left_alone(tmp_path):
+    with temporary_settings(updates={PREFECT_HOME: tmp_path / "home"}):
+        proc = _OwnSessionSubprocess.Popen([sys.executable, "-c", CHILD], stdout=subprocess.PIPE,
+                                           stderr=subprocess.PIPE, text=True)
+        out, err = proc.communicate(timeout=60)
+        assert "out line" in out and "server says" in err
+        assert not server_log_path().exists() or "out line" not in server_log_path().read_text()
