@@ -128,27 +128,12 @@ def _quiet_runner_sigterm(guard) -> None:
     Runner.handle_sigterm = handle_sigterm  # this process only serves; it ends with the command
 
 
-class _ExpectedOutcomeFilter:
-    """Drop the traceback from log records about an expected outcome (bad input, a failed quality gate): the
-    command prints its own one line for those. ``GRAPHKIT_DEBUG=1`` keeps them."""
-
-    def filter(self, record) -> bool:
-        exc = record.exc_info[1] if record.exc_info else None
-        if isinstance(exc, (InputError, GateFailure)):
-            record.exc_info, record.exc_text = None, None
-        return True
-
-
 def _no_tracebacks_for_expected_outcomes() -> None:
-    import logging
+    """Once Prefect is loaded: its console follows the command's log level and says nothing about the outcomes
+    the command reports in its own line (see :mod:`graphkit.logs`)."""
+    from .logs import adopt_prefect_console
 
-    if os.environ.get("GRAPHKIT_DEBUG"):
-        return
-    names = [n for n in logging.Logger.manager.loggerDict if n == "prefect" or n.startswith("prefect.")]
-    for logger in [logging.getLogger(), *map(logging.getLogger, names)]:
-        for handler in logger.handlers:
-            if not any(isinstance(f, _ExpectedOutcomeFilter) for f in handler.filters):
-                handler.addFilter(_ExpectedOutcomeFilter())
+    adopt_prefect_console()
 
 
 def cmd_schedule(args) -> int:
@@ -167,6 +152,7 @@ def cmd_schedule(args) -> int:
             check_schedule(args.cron, args.timezone, args.name)  # a bad schedule fails before any server starts
             guard_temporary_server()  # stopped after serving has wound down, never by the terminal's Ctrl-C
             _quiet_runner_sigterm(guard)
+            _no_tracebacks_for_expected_outcomes()
             serve_nightly(str(Path(args.config).resolve()), cron=args.cron, timezone=args.timezone,
                           name=args.name, overrides=list(args.set))
         except BaseException:
@@ -687,6 +673,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("config", help="TOML config file")
     r.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                    help="override a config key (repeatable)")
+    _log_options(r)
     r.set_defaults(func=cmd_refresh)
 
     n = sub.add_parser("schedule", help="serve the refresh as a Prefect deployment on a cron schedule")
@@ -696,6 +683,7 @@ def build_parser() -> argparse.ArgumentParser:
     n.add_argument("--name", default="nightly-refresh", help="deployment name")
     n.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE",
                    help="override a config key (repeatable)")
+    _log_options(n)
     n.set_defaults(func=cmd_schedule)
 
     v = sub.add_parser("versions", help="list the versions in a store")
@@ -749,6 +737,7 @@ def build_parser() -> argparse.ArgumentParser:
     fi = sub.add_parser("foldin", help="provisional vectors for new nodes from their known neighbours")
     fi.add_argument("config", help="TOML config file")
     fi.add_argument("--set", action="append", default=[], metavar="SECTION.KEY=VALUE")
+    _log_options(fi)
     fi.set_defaults(func=cmd_foldin)
 
     fe = sub.add_parser("features", help="join vectors onto an entity table as numbered float columns")
@@ -780,15 +769,40 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 
+def _log_options(parser) -> None:
+    """``--log-level`` and ``--quiet`` of the commands that run stages (see :mod:`graphkit.logs`)."""
+    from .logs import LEVELS
+
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument("--log-level", choices=LEVELS, default="info", type=str.lower, metavar="LEVEL",
+                       help="what the run's log shows: debug (also each stage's start and Prefect's own lines), "
+                            "info (one line per stage, warnings and errors: the default), warning, error")
+    group.add_argument("--quiet", action="store_const", const="warning", dest="log_level",
+                       help="only warnings and errors (the same as --log-level warning)")
+
+
 def main(argv=None) -> int:
-    # Dask's scheduler and worker chatter (dozens of INFO lines per run) stays out of the run's log; warnings pass.
-    # Read by dask.config when distributed is first imported; a user's own setting wins.
-    os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
     parser = build_parser()
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:  # argparse already printed its one-line usage error
         return 2 if exc.code not in (0, None) else 0
+    undo_logging = None
+    if getattr(args, "log_level", None):  # a command that runs stages: one line per stage, no chatter
+        from .logs import configure
+
+        undo_logging = configure(args.log_level)
+    else:
+        # Dask's scheduler and worker chatter stays out of the output; read when distributed is first imported
+        os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "warning")
+    try:
+        return _dispatch(args)
+    finally:
+        if undo_logging is not None:
+            undo_logging()
+
+
+def _dispatch(args) -> int:
     try:
         return args.func(args)
     except InputError as exc:

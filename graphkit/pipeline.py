@@ -1,4 +1,7 @@
-"""The refresh as plain functions, one per stage; ``flows/refresh.py`` wraps each in a Prefect task.
+"""The refresh as plain functions, one per stage, and the stage list :data:`STAGES` that orders them.
+
+:func:`refresh` runs the list in plain Python; the Prefect flow (``graphkit.flows.refresh``) runs the same list
+through :func:`execute`, wrapping each stage's call in a task. There is no other copy of the order.
 
 Every stage reads and writes files under ``STORE/work/`` and returns a small JSON-serialisable dict (paths,
 counts, seconds), never arrays. A stage's folder is named by a key built from the input fingerprint and the
@@ -13,8 +16,9 @@ import shutil
 import time
 from datetime import datetime, timedelta, timezone
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -29,8 +33,8 @@ from .io import digest, fingerprint_files, read_json, write_json_atomic
 from .quality import check_labels_table
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_holdout", "stage_walks", "stage_train",
-           "stage_evaluate", "begin_run", "stage_publish", "finish_run", "refresh", "run_lock", "fault_point", "RUN_CLOCK",
-           "RunClock"]
+           "stage_evaluate", "stage_eval_walks", "stage_eval_train", "begin_run", "stage_publish", "finish_run", "refresh",
+           "run_lock", "fault_point", "RUN_CLOCK", "RunClock", "Stage", "STAGES", "run_stage", "run_stages", "execute"]
 
 #: Name of the file in ``STORE/reports/`` holding the measured after-publish cost of the store's last run.
 TAIL_FILE = ".timing-tail.json"
@@ -589,10 +593,9 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
 
 
 def _warn_report(exc: Exception) -> None:
-    import logging
     import warnings
 
-    logging.getLogger("graphkit").warning("could not write the run report: %s", exc)
+    # one warning: the stage runner logs it once (graphkit.pipeline.run_stages)
     warnings.warn(f"could not write the run report: {exc}", RuntimeWarning, stacklevel=3)
 
 
@@ -718,33 +721,190 @@ def finish_run(plan: dict) -> list[str]:
     return removed + clean_work(plan["store"], older_than_days=keep_days)
 
 
-def refresh(cfg: RefreshConfig) -> int:
-    """Run every stage in order without Prefect (what the flow does, for notebooks and tests)."""
-    RUN_CLOCK.begin_flow()
-    with RUN_CLOCK.span("plan"):
-        plan = plan_run(cfg)
+def stage_eval_walks(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """The walks of the evaluation model (on the holdout graph), when the published model is the full graph's."""
+    return stage_walks(cfg, plan, "eval")
+
+
+def stage_eval_train(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """The training of the evaluation model, when the published model is the full graph's."""
+    return stage_train(cfg, plan, "eval")
+
+
+def _evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict | None, holdout: dict | None
+              ) -> dict[str, Any]:
+    if holdout is not None and eval_train is None:  # publish_holdout_model: the published vectors never saw the
+        eval_train = train                          # held-out edges, so they are the evaluated ones
+    return stage_evaluate(cfg, plan, train, eval_train)
+
+
+def _has_holdout(cfg: RefreshConfig, plan: dict) -> bool:
+    return bool(plan.get("holdout_dir"))
+
+
+def _second_pass(cfg: RefreshConfig, plan: dict) -> bool:
+    return _has_holdout(cfg, plan) and not cfg.evaluate.publish_holdout_model
+
+
+@dataclass(frozen=True)
+class Stage:
+    """One step of the refresh, as data: what runs, on which earlier results, and how a rerun knows it is done.
+
+    Attributes
+    ----------
+    name : str
+        The stage's name in logs, timings and the run artifact.
+    function : callable
+        ``function(cfg, plan, *inputs)``, returning a small JSON-serialisable dict (publish: the version number).
+    inputs : tuple of str
+        Names of earlier stages whose results are passed after ``cfg`` and ``plan``, in this order (None for a
+        stage that did not run).
+    folder, marker : str or None
+        The plan entry of the stage's work folder and the file the stage writes there last. When the marker
+        exists the stage is finished: its result is read from the marker and the function is not called. The
+        markers are the only record of what a rerun can skip. None for stages that always run.
+    when : callable or None
+        ``when(cfg, plan) -> bool``; the stage runs only when it is true (None: always).
+    retries : int
+        Extra attempts after an I/O failure, under Prefect (the plain runner does not retry).
+    clock : bool
+        Add the stage's seconds to :data:`RUN_CLOCK` (for stages whose result :func:`stage_publish` does not get).
+    """
+
+    name: str
+    function: Callable[..., Any]
+    inputs: tuple[str, ...] = ()
+    folder: str | None = None
+    marker: str | None = None
+    when: Callable[[RefreshConfig, dict], bool] | None = None
+    retries: int = 0
+    clock: bool = False
+
+    def marker_path(self, plan: dict) -> Path | None:
+        if self.marker is None or not plan.get(self.folder):
+            return None
+        return Path(plan[self.folder]) / self.marker
+
+    def is_done(self, plan: dict) -> bool:
+        path = self.marker_path(plan)
+        return path is not None and path.is_file()
+
+
+#: The refresh, in order. Both :func:`refresh` and the Prefect flow (``graphkit.flows.refresh``) run this list.
+STAGES: tuple[Stage, ...] = (
+    Stage("ingest", stage_ingest, folder="ingest_dir", marker="ingest.json", retries=2),
+    Stage("graph", stage_graph),
+    Stage("holdout", stage_holdout, folder="holdout_dir", marker="holdout.json", when=_has_holdout),
+    Stage("eval_walks", stage_eval_walks, folder="eval_walks_dir", marker="manifest.json", when=_second_pass,
+          clock=True),
+    Stage("eval_train", stage_eval_train, folder="eval_train_dir", marker="train.json", when=_second_pass,
+          clock=True),
+    Stage("walks", stage_walks, folder="walks_dir", marker="manifest.json"),
+    Stage("train", stage_train, folder="train_dir", marker="train.json"),
+    Stage("evaluate", _evaluate, inputs=("train", "eval_train", "holdout")),
+    Stage("publish", stage_publish, inputs=("ingest", "graph", "walks", "train", "evaluate", "holdout"), retries=2),
+)
+
+
+def run_stage(stage: Stage, cfg: RefreshConfig, plan: dict, *inputs) -> Any:
+    """Run one stage, or read its result from its completion marker when an earlier run finished it."""
+    if stage.is_done(plan):
+        return {**read_json(stage.marker_path(plan)), "skipped": True}
+    return stage.function(cfg, plan, *inputs)
+
+
+@contextmanager
+def _warnings_once(log):
+    """Log each distinct warning raised inside the block once, as one line (no source line)."""
+    import warnings
+
+    seen: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            yield
+        finally:
+            for w in caught:
+                text = str(w.message)
+                if text not in seen:
+                    seen.append(text)
+                    log.warning("%s", text)
+
+
+def run_stages(cfg: RefreshConfig, plan: dict, *, call: Callable[..., Any] | None = None,
+               record: dict | None = None) -> dict[str, Any]:
+    """Run :data:`STAGES` in order; returns ``{stage name: result}`` of the stages that ran.
+
+    Parameters
+    ----------
+    call : callable, optional
+        ``call(stage, cfg, plan, *inputs)`` runs one stage; default :func:`run_stage` (the flow passes one that
+        wraps it in a Prefect task).
+    record : dict, optional
+        Filled as the stages go, also when one fails: ``{name: {"status": "ran" | "skipped" | "failed",
+        "seconds": wall seconds, "result": the result}}`` (for the run artifact).
+
+    Each stage logs one line (:func:`graphkit.logs.stage_line`) on the ``graphkit.run`` logger, its start at
+    debug level, and each warning it raised once.
+    """
+    import logging
+
+    from .logs import RUN_LOGGER, stage_line
+
+    log = logging.getLogger(RUN_LOGGER)
+    call = call or run_stage
+    record = {} if record is None else record
+    results: dict[str, Any] = {}
+    for stage in STAGES:
+        if stage.when is not None and not stage.when(cfg, plan):
+            continue
+        log.debug("stage %s started", stage.name)
+        t0 = time.perf_counter()
+        try:
+            with _warnings_once(log):
+                result = call(stage, cfg, plan, *(results.get(name) for name in stage.inputs))
+        except BaseException:
+            record[stage.name] = {"status": "failed", "seconds": time.perf_counter() - t0, "result": None}
+            raise
+        seconds = time.perf_counter() - t0
+        results[stage.name] = result
+        if isinstance(result, dict):
+            status, shown = ("skipped" if result.get("skipped") else "ran"), result
+            if stage.clock:
+                RUN_CLOCK.add(stage.name, 0.0 if result.get("skipped") else result["seconds"])
+        else:  # publish: the version number
+            status, shown = "ran", {"version": result, "seconds": seconds}
+        record[stage.name] = {"status": status, "seconds": seconds, "result": shown}
+        log.info("%s", stage_line(stage.name, result, seconds))
+    return results
+
+
+def execute(cfg: RefreshConfig, plan: dict, *, call: Callable[..., Any] | None = None,
+            record: dict | None = None) -> int:
+    """The run under the store lock: record its ``as_of``, run the stages, remove its work folders once the
+    version is published or recorded as failed (:class:`GateFailure`); returns the version published."""
     with run_lock(cfg):
         begin_run(plan)
-        ingest = stage_ingest(cfg, plan)
-        graph = stage_graph(cfg, plan)
-        holdout = stage_holdout(cfg, plan)
-        eval_train = None
-        if holdout is not None and not cfg.evaluate.publish_holdout_model:
-            eval_walks = stage_walks(cfg, plan, "eval")
-            eval_train = stage_train(cfg, plan, "eval")
-            for name, stage in (("eval_walks", eval_walks), ("eval_train", eval_train)):
-                RUN_CLOCK.add(name, 0.0 if stage.get("skipped") else stage["seconds"])
-        walks = stage_walks(cfg, plan)
-        train = stage_train(cfg, plan)
-        if holdout is not None and cfg.evaluate.publish_holdout_model:
-            eval_train = train  # the published vectors never saw the held-out edges
-        evaluation = stage_evaluate(cfg, plan, train, eval_train)
         try:
-            version = stage_publish(cfg, plan, ingest, graph, walks, train, evaluation, holdout)
+            results = run_stages(cfg, plan, call=call, record=record)
         except GateFailure:
             finish_run(plan)  # the run is over and recorded; its scratch is not needed for a resume
-            RUN_CLOCK.end_flow()
             raise
         finish_run(plan)
-    RUN_CLOCK.end_flow()
-    return version
+    return results["publish"]
+
+
+def refresh(cfg: RefreshConfig) -> int:
+    """Run every stage in order without Prefect (what the flow does, for notebooks and tests)."""
+    import logging
+
+    from .logs import RUN_LOGGER
+
+    RUN_CLOCK.begin_flow()
+    try:
+        with RUN_CLOCK.span("plan"):
+            plan = plan_run(cfg)
+        logging.getLogger(RUN_LOGGER).debug("as_of %s (%s)", plan["as_of"], plan["as_of_source"])
+        return execute(cfg, plan)
+    finally:
+        RUN_CLOCK.end_flow()  # what followed the version row, measured for the next run's estimate
