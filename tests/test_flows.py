@@ -1,9 +1,10 @@
 """The Prefect refresh flow and the nightly deployment, on the demo data, under one session ``prefect_test_harness``.
 
-What is checked: a run publishes and attaches its markdown artifact; after a failed run, changing only
-``train.dim`` reuses ingest and walks (Prefect ``Cached`` states, zero timings in the catalog); runs killed with
-SIGKILL (``GRAPHKIT_FAULT``) resume and publish, and a cached result whose files are gone is not trusted; the
-nightly deployment carries the cron schedule and time zone, and a served run of it publishes.
+What is checked: a run publishes and attaches its markdown artifact, one task per stage of
+``graphkit.pipeline.STAGES``; after a failed run, changing only ``train.dim`` reuses ingest and walks (skipped by
+their completion markers, zero timings in the catalog); runs killed with SIGKILL (``GRAPHKIT_FAULT``) resume from
+the markers and publish, and a stage whose marker is gone runs again; the nightly deployment carries the cron
+schedule and time zone, and a served run of it publishes.
 """
 
 from __future__ import annotations
@@ -61,9 +62,8 @@ def _task_states(flow_run_id) -> dict[str, tuple[str, int]]:
 
     with _client() as c:
         runs = c.read_task_runs(flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])))
-    # Prefect names runs "<task>-<3 hex>"; walks and train runs are named "<task>-<which>" by the flow
-    return {(r.name if r.name.endswith(("-published", "-eval")) else r.name.rsplit("-", 1)[0]):
-            (r.state.name, r.run_count) for r in runs}
+    # the flow names each task run after its stage (graphkit.flows.refresh.stage_task)
+    return {r.name: (r.state.name, r.run_count) for r in runs}
 
 
 def _artifacts(flow_run_id=None, store=None) -> list:
@@ -115,7 +115,7 @@ def test_refresh_publishes_and_attaches_artifact(published):
 
     fr = state.state_details.flow_run_id
     states = _task_states(fr)
-    assert set(states) == {"ingest", "graph", "holdout", "walks-published", "train-published", "evaluate",
+    assert set(states) == {"ingest", "graph", "holdout", "walks", "train", "evaluate",
                            "publish"}, states  # no second pass: the holdout model is the published one
     assert all(name == "Completed" and runs == 1 for name, runs in states.values()), states
 
@@ -133,8 +133,10 @@ def test_refresh_publishes_and_attaches_artifact(published):
     assert "| link_auc_cosine |" in md
 
     logs = _logs(fr)
-    assert any(m.startswith("walks: 30k walks, 1.2M tokens") and "tokens/s" in m for m in logs), logs
-    assert any(m.startswith("train: 1.2M tokens, dim 64") and "tokens/s" in m for m in logs), logs
+    # the stage lines of graphkit.logs.stage_line reach the run's log in Prefect too
+    assert any(m.startswith("walks ") and "1.2M tokens" in m and "tokens/s" in m for m in logs), logs
+    assert any(m.startswith("train ") and "tokens/s, dim 64" in m for m in logs), logs
+    assert any(m.startswith("publish ") and m.endswith("version 1") for m in logs), logs
 
 
 @pytest.mark.slow
@@ -151,10 +153,13 @@ def test_progress_reaches_the_flow_logs(published):
 def test_failed_run_then_dim_change_reuses_ingest_and_walks(harness, tmp_path, monkeypatch):
     store = tmp_path / "store"
 
+    import dataclasses
+
     def broken_publish(*args, **kwargs):
         raise StoreError("injected publish failure")
 
-    monkeypatch.setattr(pipeline, "stage_publish", broken_publish)
+    monkeypatch.setattr(pipeline, "STAGES", tuple(dataclasses.replace(s, function=broken_publish)
+                                                  if s.name == "publish" else s for s in pipeline.STAGES))
     failed = _refresh(store, *FAST)
     assert failed.is_failed()
     assert not (store / "catalog.duckdb").exists()  # a failed run never publishes
@@ -163,8 +168,9 @@ def test_failed_run_then_dim_change_reuses_ingest_and_walks(harness, tmp_path, m
     [md] = [a.data for a in _artifacts(fr)]
     assert "**Failed**" in md and "injected publish failure" in md and "| publish | failed |" in md
     plan64 = pipeline.plan_run(load_config(DEMO, [f'store.path="{store}"', *FAST]))
-    for key, task in (("ingest_dir", "ingest"), ("walks_dir", "walks"), ("train_dir", "train")):
-        assert (Path(plan64[key]) / f"prefect-{task}.json").is_file()  # the results persisted beside the files
+    for key, marker in (("ingest_dir", "ingest.json"), ("walks_dir", "manifest.json"), ("train_dir", "train.json")):
+        assert (Path(plan64[key]) / marker).is_file()  # the completion markers: what a rerun can skip
+        assert not list(Path(plan64[key]).glob("prefect-*"))  # and nothing of Prefect's beside them
     monkeypatch.undo()
 
     plan32 = pipeline.plan_run(load_config(DEMO, [f'store.path="{store}"', *FAST, "train.dim=32"]))
@@ -175,14 +181,14 @@ def test_failed_run_then_dim_change_reuses_ingest_and_walks(harness, tmp_path, m
     assert state.is_completed(), state.message
     assert state.result() == 1
     states = _task_states(state.state_details.flow_run_id)
-    assert {k: v[0] for k, v in states.items()} == {"ingest": "Cached", "graph": "Cached", "holdout": "Cached",
-                                                      "walks-published": "Cached", "train-published": "Completed",
-                                                      "evaluate": "Completed", "publish": "Completed"}
+    assert set(states) == {"ingest", "graph", "holdout", "walks", "train", "evaluate", "publish"}, states
+    assert all(name == "Completed" for name, _ in states.values()), states
     row = _row(store, 1)
     assert row["dim"] == 32
     assert row["timings"]["ingest"] == row["timings"]["walks"] == 0.0 and row["timings"]["train"] > 0
     [md] = [a.data for a in _artifacts(state.state_details.flow_run_id)]
-    assert "| ingest | cached |" in md and "| walks | cached |" in md and "| train | ran |" in md
+    assert "| ingest | skipped |" in md and "| walks | skipped |" in md and "| train | ran |" in md
+    assert "| holdout | skipped |" in md and "| graph | ran |" in md
     # this run's folders are gone; only the dim-64 training of the abandoned run is left
     assert [p.name for p in (store / "work").iterdir()] == [Path(plan64["train_dir"]).name]
 
@@ -198,9 +204,9 @@ def _cli_refresh(store, api_url, fault=None):
 
 
 @pytest.mark.slow
-def test_killed_runs_resume_and_a_record_without_its_files_is_not_trusted(harness, tmp_path):
-    """SIGKILL inside train, then inside publish; then the walk corpus is deleted behind Prefect's back (its
-    result record stays). The last run reuses ingest and training, redoes the walks, and publishes."""
+def test_killed_runs_resume_and_a_stage_without_its_marker_runs_again(harness, tmp_path):
+    """SIGKILL inside train, then inside publish; then the walk corpus and its marker are deleted. The last run
+    reuses ingest and training (their markers), redoes the walks, and publishes."""
     store = tmp_path / "store"
     plan = pipeline.plan_run(load_config(DEMO, [f'store.path="{store}"', *FAST]))
     ingest, walks, train = (Path(plan[k]) for k in ("ingest_dir", "walks_dir", "train_dir"))
@@ -221,7 +227,6 @@ def test_killed_runs_resume_and_a_record_without_its_files_is_not_trusted(harnes
     (walks / "manifest.json").unlink()
     for shard in walks.glob("shard-*.parquet"):
         shard.unlink()
-    assert (walks / "prefect-walks.json").is_file()
 
     done = _cli_refresh(store, harness)
     assert done.returncode == 0, done.stderr[-3000:]
@@ -231,11 +236,10 @@ def test_killed_runs_resume_and_a_record_without_its_files_is_not_trusted(harnes
     assert row["timings"]["ingest"] == row["timings"]["train"] == 0.0 and row["timings"]["walks"] > 0
     [artifact] = _artifacts(store=store)  # a killed run cannot attach one; the run that finished did
     assert "Published **version 1**" in artifact.data
-    assert "| ingest | cached |" in artifact.data and "| walks | ran |" in artifact.data
-    assert "| train | cached |" in artifact.data
+    assert "| ingest | skipped |" in artifact.data and "| walks | ran |" in artifact.data
+    assert "| train | skipped |" in artifact.data
     states = _task_states(artifact.flow_run_id)
-    assert states["ingest"][0] == states["train-published"][0] == "Cached"
-    assert states["walks-published"][0] == "Completed"
+    assert states["ingest"][0] == states["walks"][0] == states["train"][0] == "Completed"
 
 
 @pytest.mark.slow
@@ -490,8 +494,8 @@ def test_served_deployment_runs_a_refresh(harness, tmp_path):
 
 
 def test_a_run_leaves_at_most_its_flow_result_in_prefect_storage(harness, tmp_path):
-    """Stage results live in the stage folders (removed with them); evaluate and publish persist nothing; the
-    only file a run adds to Prefect's local result storage is the flow's return value (a few bytes)."""
+    """Stages persist no Prefect result (the completion markers are the resume record); the only file a run
+    adds to Prefect's local result storage is the flow's return value (a few bytes)."""
     from prefect.settings import get_current_settings
 
     from conftest import FAST_DEMO

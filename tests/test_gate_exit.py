@@ -36,6 +36,8 @@ def test_gate_failure_exits_3_with_one_line(tmp_path):
     gate_lines = [line for line in lines if line.startswith("graphkit: quality gate")]
     assert len(gate_lines) == 1, lines
     assert "Traceback" not in r.stderr
+    # nothing else about the failure: Prefect's own "Finished in state Failed" lines are not in the log
+    assert not [line for line in lines if "Finished in state" in line or "GateFailure" in line], lines
     line = gate_lines[0]
     assert "min_link_auc = 1.0" in line and "link_auc_cosine = 0." in line and "version 2" in line
     rows = list_versions(store)
