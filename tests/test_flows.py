@@ -302,15 +302,17 @@ def test_retries_are_for_io_failures_only():
     import duckdb
     from prefect.states import Failed
 
-    from graphkit.flows.refresh import _io_failure, ingest_task, publish_task, train_task, walks_task
+    from graphkit.flows.refresh import _io_failure, stage_task
     from graphkit.errors import EdgeTableError, GateFailure
 
     for exc, retry in ((OSError("No space left on device"), True), (duckdb.IOException("cannot open"), True),
                        (EdgeTableError("t.parquet: no column 'src'"), False), (StoreError("locked"), False),
                        (GateFailure("min_link_auc"), False), (ValueError("a bug"), False)):
         assert _io_failure(None, None, Failed(data=exc)) is retry, exc
-    assert ingest_task.retries == publish_task.retries == 2
-    assert walks_task.retries == train_task.retries == 0
+    tasks = {s.name: stage_task(s) for s in pipeline.STAGES}
+    assert tasks["ingest"].retries == tasks["publish"].retries == 2
+    assert all(t.retries == 0 for name, t in tasks.items() if name not in ("ingest", "publish"))
+    assert all(t.name == name for name, t in tasks.items())
 
 
 # ---------------------------------------------------------------------------------------------------- reporting
