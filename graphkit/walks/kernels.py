@@ -62,11 +62,11 @@ from typing import NamedTuple
 import numba
 import numpy as np
 
-from .checks import LENGTH_MIN, P_Q_RANGE, PER_NODE_MIN, SEED_MAX, THREADS_MIN, max_threads
-from .checks import check_int as _check_int
-from .rng import _G, _LOW32, _S32, _mix_kernel
-from .errors import ConfigError
-from .graph import SparseGraph
+from ..checks import LENGTH_MIN, P_Q_RANGE, PER_NODE_MIN, SEED_MAX, THREADS_MIN, max_threads
+from ..checks import check_int as _check_int
+from ..rng import _G, _LOW32, _S32, _mix_kernel
+from ..errors import ConfigError
+from ..graph import SparseGraph
 
 __all__ = ["random_walks", "walk_range", "count_visits", "count_restarts", "alias_table", "walk_diagnostics",
            "loglog_slope", "check_walk_options", "DEAD_ENDS", "P_Q_RANGE"]
