@@ -45,10 +45,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import progress
+from .checks import check_int as _check_int
 from .errors import ConfigError
 from .faults import fault_point
 from .graph import SparseGraph
-from .walks import (_check_int, _prepare, _run, alias_table, check_walk_options, check_walk_params, count_restarts,
+from .walks import (alias_table, check_walk_options, check_walk_params, count_restarts, prepare_walker, run_walks,
                     walk_diagnostics)
 
 __all__ = ["write_walk_corpus", "WalkCorpus", "accumulate_visits", "count_corpus_visits"]
@@ -197,7 +198,7 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
     graph = SparseGraph.load(graph_dir, mmap=True)
     alias = np.load(alias_path, mmap_mode="r") if alias_path is not None else None
     # check=False: the driver checked the graph files once (sorted rows for second-order walks)
-    walker = _prepare(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
+    walker = prepare_walker(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
     corpus_dir = Path(corpus_dir)
     final_parquet = corpus_dir / shard_name(index)
     tmp_parquet = _tmp_name(final_parquet)
@@ -212,7 +213,7 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
             for a in range(start, stop, row_group_walks):
                 b = min(stop, a + row_group_walks)
                 # threads=1: the Dask worker threads are the parallelism (numba threads x Dask threads <= cores)
-                walks = _run(walker, a, b, length, seed, threads=1)
+                walks = run_walks(walker, a, b, length, seed, threads=1)
                 if visits is not None:
                     n_tokens += accumulate_visits(walks, visits.counts)
                 else:
@@ -321,7 +322,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
         n_shards = _check_int("n_shards", n_shards, 1, max(1, n_walks))
     if (p, q) != (1.0, 1.0):
         # once here rather than in every task: the shard tasks run with check=False
-        _prepare(graph, weighted=False, p=p, q=q, dead_end=dead_end)
+        prepare_walker(graph, weighted=False, p=p, q=q, dead_end=dead_end)
     corpus_dir = Path(corpus_dir).resolve()
 
     if dask_address is None:
