@@ -54,13 +54,13 @@ from numba import types
 from numba.core import cgutils
 from numba.extending import intrinsic
 
-from . import progress
-from .checks import (DIM_RANGE, EPOCHS_MIN, LEARNING_RATE_MAX, MIN_LEARNING_RATE, NEGATIVES_MIN, SEED_MAX,
+from .. import progress
+from ..checks import (DIM_RANGE, EPOCHS_MIN, LEARNING_RATE_MAX, MIN_LEARNING_RATE, NEGATIVES_MIN, SEED_MAX,
                      SUBSAMPLE_RANGE, THREADS_MIN, WINDOW_MIN, max_threads)
-from .checks import check_int as _check_int
-from .rng import _G, _LOW32, _S32, _mix_kernel
-from .errors import ConfigError
-from .huffman import build_huffman
+from ..checks import check_int as _check_int
+from ..rng import _G, _LOW32, _S32, _mix_kernel
+from ..errors import ConfigError
+from ..huffman import build_huffman
 
 __all__ = ["train_vectors", "alias_table", "initial_vectors", "keep_thresholds", "sigmoid_table", "stream_key",
            "OBJECTIVES", "TRAIN_SALT", "SIG_POINTS"]
