@@ -49,6 +49,7 @@ from .checks import check_int as _check_int
 from .errors import ConfigError
 from .faults import fault_point
 from .graph import SparseGraph
+from .io import atomic_output, write_text_atomic
 from .walks import (alias_table, check_walk_options, check_walk_params, count_restarts, prepare_walker, run_walks,
                     walk_diagnostics)
 
@@ -78,15 +79,8 @@ def shard_name(index: int) -> str:
     return f"shard-{index:05d}.parquet"
 
 
-def _tmp_name(final: Path) -> Path:
-    # The random part keeps two attempts at the same shard (a Dask retry, a stale worker) from sharing a temp file.
-    return final.with_name(f"{final.name}.tmp-{uuid.uuid4().hex}")
-
-
 def _write_json_atomic(path: Path, payload: dict) -> None:
-    tmp = _tmp_name(path)
-    tmp.write_text(json.dumps(payload, indent=1, sort_keys=True))
-    os.replace(tmp, path)
+    write_text_atomic(path, json.dumps(payload, indent=1, sort_keys=True))
 
 
 # ---------------------------------------------------------------------------------------------------- planning
@@ -201,7 +195,6 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
     walker = prepare_walker(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
     corpus_dir = Path(corpus_dir)
     final_parquet = corpus_dir / shard_name(index)
-    tmp_parquet = _tmp_name(final_parquet)
     schema = pa.schema([pa.field("walk", pa.list_(pa.int32(), length), nullable=False)],
                        metadata={"graphkit.first_walk": str(start), "graphkit.seed": str(seed)})
     n_tokens = n_restarts = 0
@@ -209,7 +202,8 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
         pool = _POOLS.get(visits_pool) if visits_pool is not None else None
     visits = pool.take() if pool is not None else None
     try:
-        with pq.ParquetWriter(tmp_parquet, schema, compression="zstd", use_dictionary=False) as writer:
+        with atomic_output(final_parquet) as tmp_parquet, \
+                pq.ParquetWriter(tmp_parquet, schema, compression="zstd", use_dictionary=False) as writer:
             for a in range(start, stop, row_group_walks):
                 b = min(stop, a + row_group_walks)
                 # threads=1: the Dask worker threads are the parallelism (numba threads x Dask threads <= cores)
@@ -226,7 +220,6 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
             if start == stop:
                 writer.write_table(schema.empty_table())
             writer.add_key_value_metadata({_META_TOKENS: str(n_tokens), _META_RESTARTS: str(n_restarts)})
-        os.replace(tmp_parquet, final_parquet)
         if visits is not None:
             visits.shards.append(index)
     except BaseException:
@@ -234,7 +227,6 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
             visits.spoiled = True  # holds part of a shard that is not complete
         raise
     finally:
-        tmp_parquet.unlink(missing_ok=True)
         if visits is not None:
             pool.give(visits)
     return {"index": index, "n_tokens": n_tokens, "n_restarts": n_restarts, "counted": visits is not None}
@@ -393,8 +385,7 @@ def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
     into place (so a present file is a complete one); reused by a rerun."""
     final = corpus_dir / ALIAS
     if not final.is_file():
-        tmp = _tmp_name(final)
-        try:
+        with atomic_output(final) as tmp:
             if graph.n_edges:
                 table = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.uint64, shape=(graph.n_edges,))
                 alias_table(graph, out=table)
@@ -403,9 +394,6 @@ def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
             else:  # an empty array cannot be memory-mapped
                 with open(tmp, "wb") as f:
                     np.save(f, np.empty(0, dtype=np.uint64))
-            os.replace(tmp, final)
-        finally:
-            tmp.unlink(missing_ok=True)
     return final
 
 
@@ -458,13 +446,8 @@ def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, p
     if int(visits.sum()) != manifest["n_tokens"]:
         raise ConfigError(f"walk corpus {str(corpus_dir)!r}: the shards hold {int(visits.sum())} tokens, their "
                           f"footers say {manifest['n_tokens']}; delete the folder and run again")
-    tmp = _tmp_name(corpus_dir / VISITS)
-    try:
-        with open(tmp, "wb") as f:
-            np.save(f, visits)
-        os.replace(tmp, corpus_dir / VISITS)
-    finally:
-        tmp.unlink(missing_ok=True)
+    with atomic_output(corpus_dir / VISITS) as tmp, open(tmp, "wb") as f:
+        np.save(f, visits)
     manifest["visits"] = VISITS
     manifest["diagnostics"] = _diagnostics(graph, visits, shards, plan["per_node"])
     _write_json_atomic(corpus_dir / MANIFEST, manifest)
