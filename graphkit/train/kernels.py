@@ -47,6 +47,7 @@ from ..rng import G as _G, LOW32 as _LOW32, S32 as _S32, mix_kernel as _mix_kern
 #: Dot products are clipped to +-_MAX_DOT before the sigmoid (the table's range): the gradient lost beyond it is
 #: below 0.25 % of the learning rate.
 _MAX_DOT = np.float32(6.0)
+MAX_DOT = _MAX_DOT
 #: Walks per block; threads take blocks in turn (see ``_train_parallel_kernel``), so blocks are kept small.
 _BLOCK = 64
 

@@ -8,7 +8,7 @@ import numpy as np
 
 from ..alias import alias_table_kernel
 from ..rng import LOW32, S32
-from .kernels import _MAX_DOT
+from .kernels import MAX_DOT as _MAX_DOT
 
 __all__ = ["stream_key", "alias_table", "sigmoid_table", "keep_thresholds", "initial_vectors", "TRAIN_SALT",
            "INIT_SALT", "SIG_POINTS"]
