@@ -54,8 +54,10 @@ def _check_vectors(name, vectors) -> np.ndarray:
         raise ConfigError(f"{name} must be a non-empty 2-D array [n_nodes, dim], got shape {x.shape}")
     if x.dtype.kind != "f":
         raise ConfigError(f"{name} must hold floats, got dtype {x.dtype}")
-    if not np.all(np.isfinite(x)):
-        raise ConfigError(f"{name} holds {int(np.size(x) - np.isfinite(x).sum())} NaN or infinite values")
+    step = max(1, _BLOCK_ELEMS // x.shape[1])  # row blocks: no full-size mask, a memory map is read, not copied
+    bad = sum(int(np.count_nonzero(~np.isfinite(x[a:a + step]))) for a in range(0, x.shape[0], step))
+    if bad:
+        raise ConfigError(f"{name} holds {bad} NaN or infinite values")
     return x
 
 
@@ -587,48 +589,105 @@ def node_classification(vectors, node_idx, label, *, ratios=DEFAULT_RATIOS, repe
 
 
 # ---------------------------------------------------------------------------------------------------- drift
-def _check_shared(prev, cur):
-    prev = _check_vectors("prev", prev)
-    cur = _check_vectors("cur", cur)
-    if prev.shape[0] != cur.shape[0]:
+def _check_shared(prev, cur, cur_rows=None):
+    """Both matrices as arrays (no copy; memory maps stay maps) and ``cur_rows`` as int64, shapes checked; the
+    values are checked for NaN block by block where they are read."""
+    prev, cur = np.asarray(prev), np.asarray(cur)
+    for name, x in (("prev", prev), ("cur", cur)):
+        if x.ndim != 2 or x.shape[0] == 0 or x.shape[1] == 0:
+            raise ConfigError(f"{name} must be a non-empty 2-D array [n_nodes, dim], got shape {x.shape}")
+        if x.dtype.kind != "f":
+            raise ConfigError(f"{name} must hold floats, got dtype {x.dtype}")
+    if cur_rows is not None:
+        cur_rows = np.asarray(cur_rows)
+        if cur_rows.ndim != 1 or cur_rows.dtype.kind not in "iu":
+            raise ConfigError(f"cur_rows must be a 1-D array of row numbers, got shape {cur_rows.shape} "
+                              f"dtype {cur_rows.dtype}")
+        cur_rows = cur_rows.astype(np.int64, copy=False)
+        if cur_rows.size and (cur_rows.min() < 0 or cur_rows.max() >= cur.shape[0]):
+            raise ConfigError(f"cur_rows must lie in 0..{cur.shape[0] - 1}")
+    n_cur = cur.shape[0] if cur_rows is None else cur_rows.size
+    if prev.shape[0] != n_cur:
         raise ConfigError(f"prev and cur must hold the same shared nodes (rows), "
-                          f"got {prev.shape[0]} and {cur.shape[0]}")
-    return prev, cur
+                          f"got {prev.shape[0]} and {n_cur}")
+    return prev, cur, cur_rows
 
 
-def _unit_rows(x) -> np.ndarray:
-    x = np.asarray(x, dtype=np.float32)
-    norm = np.linalg.norm(x, axis=1, keepdims=True)
-    return x / np.where(norm > 0, norm, 1.0)
+class _Rows:
+    """Row blocks of ``x`` (float32), optionally through a row map (``x[rows[a:b]]``), checked to be finite."""
+
+    def __init__(self, name, x, rows=None):
+        self.name, self.x, self.rows = name, x, rows
+        self.n = x.shape[0] if rows is None else rows.size
+
+    def block(self, a, b) -> np.ndarray:
+        idx = slice(a, b) if self.rows is None else self.rows[a:b]
+        out = np.asarray(self.x[idx], dtype=np.float32)
+        if not np.isfinite(out).all():
+            raise ConfigError(f"{self.name} holds NaN or infinite values")
+        return out
+
+    def take(self, index) -> np.ndarray:
+        return np.asarray(self.x[index if self.rows is None else self.rows[index]], dtype=np.float32)
 
 
-def _knn(unit, queries, k) -> np.ndarray:
-    """Indices (int64 [len(queries), k], sorted) of the ``k`` nearest rows of ``unit`` by cosine, self excluded."""
-    n = unit.shape[0]
-    block = max(1, min(queries.size, _BLOCK_ELEMS // max(n, 1)))
-    out = np.empty((queries.size, k), dtype=np.int64)
-    for start in range(0, queries.size, block):
-        q = queries[start:start + block]
-        sim = unit[q] @ unit.T
-        sim[np.arange(q.size), q] = -np.inf
-        out[start:start + q.size] = np.argpartition(sim, n - k, axis=1)[:, n - k:]
-    out.sort(axis=1)
-    return out
+def _safe_norms(x) -> np.ndarray:
+    norm = np.linalg.norm(x, axis=1)
+    return np.where(norm > 0, norm, 1.0).astype(np.float32)  # a zero vector has cosine 0 with every other
 
 
-def neighbour_overlap(prev, cur, *, k=10, sample=2000, seed=0) -> float:
+def _knn(rows: _Rows, queries, k) -> np.ndarray:
+    """Indices (int64 [len(queries), k], sorted) of the ``k`` nearest rows by cosine, self excluded.
+
+    The rows are read block by block (a memory map is never copied whole): each block's similarities to every
+    query, at most ``_BLOCK_ELEMS`` of them, then its ``k`` best per query merged into a running top ``k``.
+    Memory: ``O(len(queries) * (k + block))``, independent of the number of rows beyond the block."""
+    n, m = rows.n, queries.size
+    q = rows.take(queries)
+    q /= _safe_norms(q)[:, None]
+    step = max(k + 1, _BLOCK_ELEMS // max(m, 1))
+    best_sim = np.full((m, k), -np.inf, dtype=np.float32)
+    best_idx = np.full((m, k), -1, dtype=np.int64)
+    qpos = np.arange(m)
+    for a in range(0, n, step):
+        b = min(n, a + step)
+        block = rows.block(a, b)
+        sim = q @ block.T
+        sim /= _safe_norms(block)[None, :]
+        del block
+        inside = (queries >= a) & (queries < b)
+        sim[qpos[inside], queries[inside] - a] = -np.inf  # a node is not its own neighbour
+        if b - a > k:
+            part = np.argpartition(sim, b - a - k, axis=1)[:, b - a - k:]
+        else:
+            part = np.broadcast_to(np.arange(b - a), (m, b - a))
+        cand_sim = np.concatenate([best_sim, np.take_along_axis(sim, part, axis=1)], axis=1)
+        cand_idx = np.concatenate([best_idx, part + a], axis=1)
+        del sim, part
+        keep = np.argpartition(cand_sim, cand_sim.shape[1] - k, axis=1)[:, cand_sim.shape[1] - k:]
+        best_sim = np.take_along_axis(cand_sim, keep, axis=1)
+        best_idx = np.take_along_axis(cand_idx, keep, axis=1)
+    best_idx.sort(axis=1)
+    return best_idx
+
+
+def neighbour_overlap(prev, cur, *, k=10, sample=2000, seed=0, cur_rows=None) -> float:
     """Mean share of the ``k`` nearest neighbours (cosine) that two versions agree on.
 
     Parameters
     ----------
     prev, cur : ndarray of float, shape (n_shared, dim_prev) and (n_shared, dim_cur)
-        Vectors of the same nodes in the same row order (the dimensions may differ).
+        Vectors of the same nodes in the same row order (the dimensions may differ). Memory maps are read block
+        by block, never copied whole.
     k : int, default 10
         Neighbours per node; lowered to ``n_shared - 1`` on smaller sets.
     sample : int, default 2000
         Query nodes, drawn without replacement (all nodes when ``n_shared <= sample``). Cost
-        ``O(sample * n_shared * dim)``, memory at most 64 MB of similarities at a time.
+        ``O(sample * n_shared * dim)``; memory ``O(sample * dim)`` plus at most 64 MB of similarities at a time.
     seed : int, default 0
+    cur_rows : ndarray of int, shape (n_shared,), optional
+        Row ``i`` of ``prev`` pairs with row ``cur_rows[i]`` of ``cur`` (``cur`` may then hold more rows): the
+        shared rows of a larger matrix without gathering them into a copy.
 
     Returns
     -------
@@ -641,7 +700,7 @@ def neighbour_overlap(prev, cur, *, k=10, sample=2000, seed=0) -> float:
     ConfigError
         Bad shapes or values, fewer than 2 shared nodes.
     """
-    prev, cur = _check_shared(prev, cur)
+    prev, cur, cur_rows = _check_shared(prev, cur, cur_rows)
     k = _check_int("k", k, 1)
     sample = _check_int("sample", sample, 1)
     rng = np.random.default_rng(_check_seed(seed))
@@ -650,8 +709,8 @@ def neighbour_overlap(prev, cur, *, k=10, sample=2000, seed=0) -> float:
         raise ConfigError(f"neighbour overlap needs at least 2 shared nodes, got {n}")
     k = min(k, n - 1)
     queries = np.sort(rng.choice(n, size=min(sample, n), replace=False))
-    a = _knn(_unit_rows(prev), queries, k)
-    b = _knn(_unit_rows(cur), queries, k)
+    a = _knn(_Rows("prev", prev), queries, k)
+    b = _knn(_Rows("cur", cur, cur_rows), queries, k)
     common = (a[:, :, None] == b[:, None, :]).any(axis=2).sum(axis=1)
     return float(common.mean() / k)
 
@@ -686,7 +745,7 @@ def procrustes_rotation(prev, cur) -> np.ndarray:
     ConfigError
         Bad shapes or values.
     """
-    prev, cur = _check_shared(prev, cur)
+    prev, cur, _ = _check_shared(_check_vectors("prev", prev), _check_vectors("cur", cur))
     if prev.shape[1] != cur.shape[1]:
         raise ConfigError(f"prev and cur must have the same dimension, got {prev.shape[1]} and {cur.shape[1]}")
     u, _, vt = np.linalg.svd(_cross_product(prev, cur))

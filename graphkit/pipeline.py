@@ -492,8 +492,11 @@ def stage_evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict
 
     t0 = time.perf_counter()
     node_ids, node_kinds = _published_ids(cfg, plan)
-    eval_vectors = np.load(eval_train["vectors"]) if eval_train else None
-    metrics = evaluate_vectors(cfg, plan, published_vectors=np.load(train["vectors"]), eval_vectors=eval_vectors,
+    # memory-mapped, and one map when the published model is the evaluated one: the measures read row blocks
+    published = np.load(train["vectors"], mmap_mode="r")
+    same = eval_train is not None and Path(eval_train["vectors"]) == Path(train["vectors"])
+    eval_vectors = published if same else np.load(eval_train["vectors"], mmap_mode="r") if eval_train else None
+    metrics = evaluate_vectors(cfg, plan, published_vectors=published, eval_vectors=eval_vectors,
                                node_ids=node_ids, node_kinds=node_kinds)
     return {"metrics": metrics, "seconds": round(time.perf_counter() - t0, 3)}
 
