@@ -17,9 +17,9 @@ import warnings
 
 import numpy as np
 
-from .checks import check_int as _check_int
-from .errors import ConfigError, GraphDataWarning
-from .graph import SparseGraph
+from ..checks import check_int as _check_int
+from ..errors import ConfigError, GraphDataWarning
+from ..graph import SparseGraph
 
 __all__ = ["EdgeHoldout", "holdout_edges", "link_prediction", "auc_delong", "auc_se_hanley_mcneil",
            "node_classification", "neighbour_overlap", "procrustes_rotation", "procrustes_residual", "DEFAULT_RATIOS"]
