@@ -27,7 +27,8 @@ Exact definition (a test re-implements it with plain Python integers; all arithm
   exactly uniform). Unweighted walks take edge ``a + j``. Weighted walks use the alias table (below): with
   ``e = alias[a + j]`` they take edge ``a + j`` when ``(r & (2**32 - 1)) < (e >> 32)``, else edge
   ``a + (e & (2**32 - 1))``; ``r`` is the accepted draw, whose low 32 bits Lemire's method leaves unused.
-* Alias table (Walker 1977; Vose 1991, "A linear algorithm for generating random numbers with a given distribution"),
+* Alias table (Walker 1977; Vose 1991, "A linear algorithm for generating random numbers with a given distribution";
+  built by the one alias kernel of :mod:`graphkit.alias`, shared with training),
   one uint64 per edge, per node: ``W`` = the float64 sum of the node's weights in edge order; ``u_i = w_i * d / W``;
   indices with ``u_i < 1`` go on a stack ``small``, the others on a stack ``large``, in edge order. While both are
   non-empty: pop ``s`` from ``small`` and ``l`` from ``large``, set ``alias[a + s] = (floor(u_s * 2**32) << 32) | l``,
