@@ -36,9 +36,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import StoreError
-from .faults import fault_point
-from .sql import load_sql
+from ..errors import StoreError
+from ..faults import fault_point
+from ..sql import load_sql
 
 __all__ = ["connect", "publish_embeddings", "record_failed_run", "version_of_run", "list_versions", "read_version",
            "promote_version", "pin_version", "apply_retention", "store_lock", "clean_stale", "diagnostic_arrays",
@@ -800,7 +800,7 @@ def _matched_rows(prev_path: Path, node_ids: pa.Array, node_kinds: pa.Array) -> 
 
     A DuckDB join on (node_kind, node_id) that reads only those two columns and ``provisional`` of the previous
     version's Parquet file."""
-    from .sql import work_connection
+    from ..sql import work_connection
 
     con = work_connection(memory_limit="1GB")
     try:
@@ -888,7 +888,7 @@ def _blockwise_procrustes(old_vec, vectors: np.ndarray, new_rows: np.ndarray) ->
     """Orthogonal Procrustes of ``vectors[new_rows]`` onto ``old_vec`` (``R`` minimising ``||cur @ R - prev||_F``,
     the ``U @ Vt`` of the SVD of ``cur.T @ prev``) and the residuals of
     :func:`graphkit.evaluate.procrustes_residual`, summed in float64 over row blocks of both."""
-    from .errors import ConfigError
+    from ..errors import ConfigError
 
     dim = vectors.shape[1]
     step = _block_rows(dim)
