@@ -1,31 +1,20 @@
-"""The versioned embedding store: numbered Parquet versions plus a DuckDB catalog.
-
-Layout of a store folder::
-
-    catalog.duckdb                      versions table; views `embeddings` (current) and `embeddings_vNNNNNN`;
-                                        macros `cosine_similarity`, `nearest_neighbours`, `pair_similarity`
-    versions/000001/embeddings.parquet  node_id (the input's own type), node_kind, provisional, vector
-                                        (fixed-size list of float32): the table downstream jobs read
-    versions/000001/embeddings.duckdb   the same rows as a native DuckDB table, attached by `connect` for fast SQL
-    work/                               scratch of runs in progress (ingest, graph, walk corpus)
+"""The catalog of a store: its versions (publish, failed runs, retention, pins, promote) and reading them back.
 
 A version becomes visible only when complete. Everything of it is written in a temporary folder renamed into
 place; the catalog is then rebuilt in a copy, in one transaction (new row, current version, retention), and the
-copy renamed over the old catalog; each rename is followed by an fsync of its folder. Readers that opened the old
-catalog keep seeing the old version whole; readers that open after the rename see the new one whole. Every
-catalog writer holds the writer lock (:func:`store_lock`), and a publish is idempotent per run id.
+copy renamed over the old catalog; each rename is followed by an fsync of its folder (:func:`replace_durably`).
+Readers that opened the old catalog keep seeing the old version whole; readers that open after the rename see the
+new one whole. Every catalog writer holds the writer lock (:func:`graphkit.store.lock.store_lock`), and a publish
+is idempotent per run id.
 """
 
 from __future__ import annotations
 
-import fcntl
 import json
 import os
 import shutil
-import threading
 import time
 import uuid
-from contextlib import contextmanager
 from datetime import datetime, timezone
 from importlib.metadata import PackageNotFoundError, version as _pkg_version
 from pathlib import Path
@@ -38,14 +27,15 @@ import pyarrow.parquet as pq
 
 from ..errors import StoreError
 from ..faults import fault_point
-from ..sql import load_sql
+from ..sql import Identifier, inline, load_sql
+from . import lock
+from .lock import WRITERS, store_lock
 
-__all__ = ["connect", "publish_embeddings", "record_failed_run", "version_of_run", "list_versions", "read_version",
-           "promote_version", "pin_version", "apply_retention", "store_lock", "clean_stale", "diagnostic_arrays",
-           "CATALOG"]
+__all__ = ["publish_embeddings", "record_failed_run", "version_of_run", "list_versions", "current_version",
+           "version_row", "read_table", "read_version", "gather_rows", "promote_version", "pin_version",
+           "apply_retention", "clean_stale", "diagnostic_arrays", "load_diagnostics", "CATALOG"]
 
 CATALOG = "catalog.duckdb"
-_LOCK = ".lock"
 
 
 def _package_version() -> str:
@@ -55,259 +45,8 @@ def _package_version() -> str:
         return "0+unknown"
 
 
-def _sql_literal(text: str) -> str:
-    return "'" + text.replace("'", "''") + "'"
-
-
 def _version_dir(version: int) -> str:
     return f"versions/{version:06d}"
-
-
-#: Seconds a writer that finds the lock taken keeps re-reading the holder's pid when the lock file names no
-#: live process yet: the winner of a simultaneous start writes its pid a moment after taking the lock.
-_HOLDER_SETTLE_SECONDS = 1.0
-
-# The locks this process holds, by resolved store path: [pid, fd, depth]. The lock is re-entrant within the
-# process that holds it (a refresh holds it for the whole run; the publish inside takes it again), and a forked
-# child, whose pid differs, does not inherit the ownership.
-_HELD: dict[str, list] = {}
-_HELD_GUARD = threading.Lock()
-# Catalog writers of one process take turns too (the flock cannot tell its threads apart): a promote in a notebook
-# thread while a refresh publishes in another, say.
-_WRITERS = threading.RLock()
-
-
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:  # alive, another user's
-        return True
-    return True
-
-
-def _lock_holder(fd) -> tuple[int, str] | None:
-    """(pid, purpose) the lock file names, when that process is alive; None otherwise."""
-    pid_text, _, purpose = os.pread(fd, 256, 0).decode(errors="replace").strip().partition(" ")
-    if not pid_text.isdigit() or not _pid_alive(int(pid_text)):
-        return None
-    return int(pid_text), purpose.strip() or "writer"
-
-
-def _held_message(store, holder, waited: float) -> str:
-    after = f" after waiting {waited:g} s" if waited > 0 else ""
-    if holder is None:
-        return (f"{store}: another writer holds the store lock (its process is unknown){after}; "
-                "wait for it to finish")
-    pid, purpose = holder
-    return f"{store}: another {purpose} holds the store lock (pid {pid}){after}; wait for it to finish"
-
-
-def _take_flock(fd, store, wait: float) -> None:
-    """Take the flock on ``fd``, waiting up to ``wait`` seconds, or raise ``StoreError`` naming the holder.
-
-    The holder is named only when the lock file holds the pid of a live process; a pid left by a dead writer, or
-    no pid yet (the holder took the lock a moment ago), is re-read for up to ``_HOLDER_SETTLE_SECONDS``, after
-    which the holder is reported as unknown rather than wrongly.
-    """
-    start = time.monotonic()
-    while True:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            return
-        except BlockingIOError:
-            pass
-        _refuse_when_due(store, _lock_holder(fd), start, wait)
-        time.sleep(0.02)
-
-
-def _refuse_when_due(store, holder, start: float, wait: float) -> None:
-    """Raise ``StoreError`` naming ``holder`` once ``wait`` seconds have passed since ``start`` and the holder is
-    known, or ``_HOLDER_SETTLE_SECONDS`` have passed without it being known."""
-    elapsed = time.monotonic() - start
-    if elapsed >= wait and (holder is not None or elapsed >= _HOLDER_SETTLE_SECONDS):
-        raise StoreError(_held_message(store, holder, wait)) from None
-
-
-def _held_here(store: Path):
-    entry = _HELD.get(str(store.resolve()))
-    return entry if entry is not None and entry[0] == os.getpid() else None
-
-
-@contextmanager
-def store_lock(store, *, wait: float = 0.0, purpose: str = "refresh"):
-    """Hold the store's writer lock (``fcntl.flock`` on ``STORE/.lock``) or raise ``StoreError`` naming its owner.
-
-    Every catalog writer holds it: a refresh for its whole run, and publish, a failed run's record, promote,
-    pin and retention for their catalog switch. It is re-entrant within the process that holds it, so these
-    functions work both inside a run and on their own.
-
-    Parameters
-    ----------
-    store : path
-        The store folder (created if needed).
-    wait : float
-        Seconds to wait for another writer to finish before giving up (default 0: refuse at once).
-    purpose : str
-        What the holder is doing, recorded beside its pid for the message a refused writer gets.
-    """
-    store = Path(store)
-    store.mkdir(parents=True, exist_ok=True, mode=0o755)
-    path = store / _LOCK
-    key = str(store.resolve())
-    start, outer = time.monotonic(), False
-    while True:
-        # Taking and releasing happen under one guard, so that another thread of this process never sees the
-        # flock taken but not yet registered (or unregistered but not yet released) and refuses itself.
-        with _HELD_GUARD:
-            entry = _held_here(store)
-            if entry is not None:
-                entry[2] += 1
-                break
-            try:
-                fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
-            except OSError as exc:  # ELOOP: a symlink planted where the lock belongs is never followed
-                raise StoreError(f"{path}: cannot open the store lock ({exc.strerror}); a symlink there is "
-                                 "refused") from None
-            try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError:
-                holder = _lock_holder(fd)
-                os.close(fd)
-            else:
-                os.ftruncate(fd, 0)
-                os.pwrite(fd, f"{os.getpid()} {purpose}".encode(), 0)
-                entry = [os.getpid(), fd, 1]
-                _HELD[key] = entry
-                outer = True
-                break
-        _refuse_when_due(store, holder, start, float(wait))
-        time.sleep(0.02)
-    old_mask = os.umask(0o022) if outer else None  # nothing in the store is group- or world-writable
-    try:
-        yield
-    finally:
-        with _HELD_GUARD:
-            entry[2] -= 1
-            if entry[2] == 0:  # the last holder in this process releases the flock
-                if _HELD.get(key) is entry:
-                    del _HELD[key]
-                os.ftruncate(entry[1], 0)  # a released lock names nobody, so a later refusal cannot name a stale pid
-                os.close(entry[1])  # closing releases the flock; a killed owner's lock vanishes with its process
-        if old_mask is not None:
-            os.umask(old_mask)
-
-
-def check_store_writable(store) -> None:
-    """Fail fast, before a run starts, on a store path that cannot work or a store another writer holds.
-
-    Only looks: creates nothing. The run takes the lock for real later (:func:`store_lock`); this check is for a
-    clear error within seconds instead of after the run has started.
-    """
-    store = Path(store)
-    if store.exists() and not store.is_dir():
-        raise StoreError(f"{store}: [store] path names a file, not a folder")
-    existing = next((p for p in [store, *store.parents] if p.exists()), None)
-    if existing is not None and not os.access(existing, os.W_OK | os.X_OK):
-        raise StoreError(f"{existing}: no permission to write the store here")
-    path = store / _LOCK
-    if not path.exists() or path.is_symlink() or _held_here(store) is not None:
-        return
-    try:
-        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)
-    except OSError:
-        return  # store_lock gives the precise error
-    try:
-        _take_flock(fd, store, 0.0)
-    finally:
-        os.close(fd)
-
-
-def _fsync_dir(folder) -> None:
-    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def _replace_durably(src, dst) -> None:
-    """``os.replace`` followed by an fsync of the folders involved, so the rename itself survives a power cut."""
-    src, dst = Path(src), Path(dst)
-    os.replace(src, dst)
-    _fsync_dir(dst.parent)
-    if src.parent.resolve() != dst.parent.resolve():
-        _fsync_dir(src.parent)
-
-
-def _version_files(store: Path, rel_path: str) -> tuple[Path, Path]:
-    parquet = (store / rel_path).resolve()
-    return parquet, parquet.with_suffix(".duckdb")
-
-
-def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
-    """Open a store's catalog read-only, unable to change or read any file.
-
-    Views: ``embeddings`` (the current version, or ``version``), ``versions``, and ``embeddings_vNNNNNN`` for
-    every kept complete version; macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k)`` and
-    ``pair_similarity(a_id, b_id)``. Each version's native DuckDB copy is attached read-only, so the views scan
-    DuckDB's own storage instead of Parquet (a top-10 query over a million vectors is about ten times faster).
-
-    Once the catalog and the versions are attached (read-only) and the views made, DuckDB's local file system is
-    switched off and its configuration locked: no statement on the connection can write a file (COPY, EXPORT,
-    ATTACH, INSTALL), read one (``read_csv``, ``read_parquet``), change the attached databases (they are
-    read-only) or change a setting back. Temporary tables and views, in memory, still work.
-
-    Parameters
-    ----------
-    store : path
-        The store folder.
-    version : int, optional
-        Point ``embeddings`` at this kept version instead of the current one.
-
-    Raises
-    ------
-    StoreError
-        When the folder holds no catalog, no complete version yet, or the version is not a kept complete one.
-    """
-    store = Path(store)
-    path = store / CATALOG
-    if not path.exists():
-        raise StoreError(f"{store}: no embedding store here (no {CATALOG}); run `graphkit refresh` first")
-    con = duckdb.connect(str(path), read_only=True)
-    try:
-        rows = con.execute("select version, path, dim, is_current from versions where status = 'complete' "
-                           "order by version").fetchall()
-        if not rows:
-            n_runs = con.execute("select count(*) from versions").fetchall()[0][0]
-            raise StoreError(f"{store}: no complete version yet ({n_runs} run(s) recorded, none published; "
-                             f"`graphkit versions {store}` shows why)")
-        if version is not None and int(version) not in {r[0] for r in rows}:
-            raise StoreError(f"{store}: no complete version {version} (kept: {', '.join(str(r[0]) for r in rows)})")
-        for v, rel_path, dim, is_current in rows:
-            parquet, native = _version_files(store, rel_path)
-            alias = f"v{v:06d}"
-            if native.exists():
-                con.execute(f"attach {_sql_literal(str(native))} as {alias} (read_only)")
-                body = f"select node_id, node_kind, provisional, vector from {alias}.embeddings"
-            else:  # no native copy: Arrow reads the Parquet file, as DuckDB's own file system is switched off
-                import pyarrow.dataset as ds
-
-                con.register(f"_parquet_{alias}", ds.dataset(str(parquet), format="parquet"))
-                body = (f"select node_id, node_kind, provisional, vector::float[{int(dim)}] as vector "
-                        f"from _parquet_{alias}")
-            con.execute(f"create or replace temp view embeddings_v{v:06d} as {body}")
-            if (version is None and is_current) or v == version:
-                con.execute(f"create or replace temp view embeddings as {body}")
-        con.execute("set allowed_directories = $dirs", {"dirs": [str(store.resolve()) + os.sep]})
-        con.execute("set enable_external_access = false")  # before the file system goes: it cannot be set after
-        con.execute("set disabled_filesystems = 'LocalFileSystem'")
-        con.execute("set lock_configuration = true")
-    except BaseException:
-        con.close()
-        raise
-    return con
 
 
 _JSON_COLUMNS = ("params", "input_fingerprint", "counts", "timings", "metrics")
@@ -354,7 +93,8 @@ def current_version(store) -> int | None:
         con.close()
 
 
-def _version_row(store, version: int | None) -> dict[str, Any]:
+def version_row(store, version: int | None) -> dict[str, Any]:
+    """The catalog row of a complete version (the current one by default); ``StoreError`` otherwise."""
     con = _open_catalog(store)
     try:
         if version is None:
@@ -372,7 +112,7 @@ def _version_row(store, version: int | None) -> dict[str, Any]:
 
 def read_table(store, version: int | None = None) -> pa.Table:
     """A version's table (node_id, node_kind, provisional, vector) as Arrow; the current one by default."""
-    row = _version_row(store, version)
+    row = version_row(store, version)
     return pq.read_table(Path(store) / row["path"])
 
 
@@ -407,8 +147,7 @@ def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics
     con = duckdb.connect(str(tmp_dir / "embeddings.duckdb"))
     try:
         con.register("version_rows", table)
-        con.execute(f"create table embeddings as select node_id, node_kind, provisional, "
-                    f"vector::float[{int(dim)}] as vector from version_rows")
+        con.execute(inline(load_sql("version_embeddings"), {"dim": int(dim)}))
         con.execute("checkpoint")
     finally:
         con.close()
@@ -419,8 +158,8 @@ def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics
     for name in names:
         with open(tmp_dir / name, "rb") as fh:
             os.fsync(fh.fileno())
-    _fsync_dir(tmp_dir)
-    _replace_durably(tmp_dir, final_dir)
+    lock.fsync_dir(tmp_dir)
+    lock.replace_durably(tmp_dir, final_dir)
     fault_point("publish-version-renamed")  # the version's folder in place, the catalog not yet switched
     return f"{_version_dir(version)}/embeddings.parquet"
 
@@ -464,34 +203,6 @@ def _sweep_versions(store: Path) -> list[str]:
     return removed
 
 
-#: The stage folders :func:`graphkit.pipeline.plan_run` names under ``STORE/work/``.
-WORK_PREFIXES = ("ingest-", "holdout-", "walks-", "train-")
-
-
-def clean_work(store, *, keep=(), older_than_days: float = 7.0, now: float | None = None) -> list[str]:
-    """Remove the stage folders of runs that never finished, once they are older than ``older_than_days``.
-
-    A run killed midway leaves its stage folders so that the next run with the same input and parameters resumes
-    from them; when the input or the parameters changed, nothing will ever resume from them. A folder's age is
-    its modification time, which every file written directly into it (a walk shard, a marker) refreshes. Only
-    folders named like a stage's (:data:`WORK_PREFIXES`) are touched, never ``keep`` (the current run's) nor
-    anything that is a symlink. Call it only while holding the run lock. Returns the removed paths.
-    """
-    work = Path(store) / "work"
-    if not work.is_dir():
-        return []
-    cutoff = (time.time() if now is None else now) - older_than_days * 86400.0
-    keep = {Path(k).resolve() for k in keep if k}
-    removed = []
-    for entry in sorted(work.iterdir()):
-        if not entry.name.startswith(WORK_PREFIXES) or entry.is_symlink() or not entry.is_dir():
-            continue
-        if entry.resolve() in keep or entry.stat().st_mtime > cutoff:
-            continue
-        shutil.rmtree(entry, ignore_errors=True)
-        removed.append(str(entry))
-    return removed
-
 
 def _next_version(con) -> int:
     return int(con.execute("select coalesce(max(version), 0) + 1 from versions").fetchall()[0][0])
@@ -502,13 +213,12 @@ def _create_views(con, store: Path) -> None:
     transaction: one view per kept complete version, ``embeddings`` for the current one."""
     for (name,) in con.execute("select view_name from duckdb_views() where not temporary and "
                                "view_name like 'embeddings%'").fetchall():
-        con.execute(f"drop view {name}")
+        con.execute(inline("drop view $view", {"view": Identifier(name)}))  # a name cannot be bound
     rows = con.execute("select version, path, dim, is_current from versions where status = 'complete'").fetchall()
     for v, rel_path, dim, is_current in rows:
-        path = _sql_literal(str(_version_files(store, rel_path)[0]))
-        con.execute(load_sql("embeddings").format(kind="", view=f"embeddings_v{v:06d}", path=path, dim=int(dim)))
-        if is_current:
-            con.execute(load_sql("embeddings").format(kind="", view="embeddings", path=path, dim=int(dim)))
+        path = str((store / rel_path).resolve())  # absolute: a relative path would be read from the reader's cwd
+        for view in [f"embeddings_v{v:06d}"] + (["embeddings"] if is_current else []):
+            con.execute(inline(load_sql("embeddings"), {"view": Identifier(view), "path": path, "dim": int(dim)}))
     if any(r[3] for r in rows):
         con.execute(load_sql("macros"))
 
@@ -538,7 +248,7 @@ def _update_catalog(store: Path, apply) -> Any:
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
     fault_point("publish")  # new catalog complete, not yet switched in
-    _replace_durably(tmp, catalog)
+    lock.replace_durably(tmp, catalog)
     return result
 
 
@@ -556,8 +266,7 @@ def _row(version: int, status: str, *, params, fingerprint, counts, timings, met
 
 
 def _insert(con, row: dict) -> None:
-    cols = ", ".join(row)
-    con.execute(f"insert into versions ({cols}) values ({', '.join('$' + k for k in row)})", row)
+    con.execute(load_sql("version_row"), row)
 
 
 def version_of_run(store, run_id: str) -> tuple[int, str] | None:
@@ -650,7 +359,7 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
     if keep is not None:
         _check_keep(keep)
     run_id = str(run_id) if run_id else uuid.uuid4().hex
-    with store_lock(store, purpose="publish"), _WRITERS:
+    with store_lock(store, purpose="publish"), WRITERS:
         known = version_of_run(store, run_id)
         if known is not None and known[1] != "failed":
             _sweep_versions(store)  # an attempt killed or failed after the switch may have left expired folders
@@ -689,7 +398,7 @@ def record_failed_run(store, *, message: str, params: dict, fingerprint: list, c
     Holds the writer lock; a retry of the same ``run_id`` gets the version already recorded."""
     store = Path(store)
     run_id = str(run_id) if run_id else uuid.uuid4().hex
-    with store_lock(store, purpose="refresh"), _WRITERS:
+    with store_lock(store, purpose="refresh"), WRITERS:
         known = version_of_run(store, run_id)
         if known is not None:
             return known[0]
@@ -723,7 +432,7 @@ def promote_version(store, version: int, *, wait: float = 0.0) -> None:
         _check_version(con, store, version)
         con.execute("update versions set is_current = (version = $v)", {"v": int(version)})
 
-    with store_lock(store, wait=wait, purpose="promote"), _WRITERS:
+    with store_lock(store, wait=wait, purpose="promote"), WRITERS:
         _update_catalog(store, apply)
 
 
@@ -736,7 +445,7 @@ def pin_version(store, version: int, pinned: bool = True, *, wait: float = 0.0) 
         _check_version(con, store, version, complete=False)
         con.execute("update versions set pinned = $p where version = $v", {"p": bool(pinned), "v": int(version)})
 
-    with store_lock(store, wait=wait, purpose="pin"), _WRITERS:
+    with store_lock(store, wait=wait, purpose="pin"), WRITERS:
         _update_catalog(store, apply)
 
 
@@ -750,73 +459,14 @@ def apply_retention(store, keep: int, *, wait: float = 0.0) -> list[int]:
     _check_keep(keep)
     store = Path(store)
     _open_catalog(store).close()
-    with store_lock(store, wait=wait, purpose="retention"), _WRITERS:
+    with store_lock(store, wait=wait, purpose="retention"), WRITERS:
         drop = _update_catalog(store, lambda con: _expire(con, int(keep)))
         for v in drop:
             shutil.rmtree(store / _version_dir(v), ignore_errors=True)
     return drop
 
 
-def load_diagnostics(store, version: int) -> dict[str, np.ndarray]:
-    path = Path(store) / _version_dir(version) / "diagnostics.npz"
-    if not path.exists():
-        return {}
-    with np.load(path, allow_pickle=False) as z:
-        return {k: z[k] for k in z.files}
-
-
-#: Working memory of one block of alignment (float64 copies of a block of old and new rows and their product); the
-#: vectors are never copied whole in float64.
-ALIGN_BLOCK_BYTES = 48 << 20
-
-
-def _block_rows(dim: int) -> int:
-    return max(256, ALIGN_BLOCK_BYTES // (3 * 8 * max(int(dim), 1)))
-
-
-def _id_family(t: pa.DataType) -> str | None:
-    if pa.types.is_integer(t):
-        return "integer"
-    if pa.types.is_string(t) or pa.types.is_large_string(t) or pa.types.is_string_view(t):
-        return "string"
-    return None
-
-
-def _cached_match(folder: Path, cur: int, n_new: int, dim: int) -> dict[str, Any] | None:
-    try:
-        meta = json.loads((folder / "match.json").read_text())
-    except (OSError, ValueError):
-        return None
-    if (meta.get("version"), meta.get("n_new"), meta.get("dim")) != (cur, n_new, dim):
-        return None
-    if meta.get("unmatched"):
-        return {"unmatched": True}
-    return {"version": cur, "new_rows": np.load(folder / "new_rows.npy"),
-            "old_vectors": np.load(folder / "old_vectors.npy", mmap_mode="r")}
-
-
-def _matched_rows(prev_path: Path, node_ids: pa.Array, node_kinds: pa.Array) -> tuple[np.ndarray, np.ndarray]:
-    """(new_rows, old_rows) int64 of the previous version's trained rows shared with the new ones, by new row.
-
-    A DuckDB join on (node_kind, node_id) that reads only those two columns and ``provisional`` of the previous
-    version's Parquet file."""
-    from ..sql import work_connection
-
-    con = work_connection(memory_limit="1GB")
-    try:
-        con.register("new_keys", pa.table({"node_kind": node_kinds.cast(pa.string()), "node_id": node_ids,
-                                           "new_row": pa.array(np.arange(len(node_ids), dtype=np.int64))}))
-        con.read_parquet(str(prev_path), file_row_number=True).create_view("prev")
-        rows = con.execute(
-            "select n.new_row, p.file_row_number::bigint as old_row from new_keys as n "
-            "join prev as p on p.node_kind = n.node_kind and p.node_id = n.node_id "
-            "where not p.provisional order by n.new_row").fetchnumpy()
-    finally:
-        con.close()
-    return (np.asarray(rows["new_row"], dtype=np.int64), np.asarray(rows["old_row"], dtype=np.int64))
-
-
-def _gather_rows(pf: pq.ParquetFile, old_rows: np.ndarray, out: np.ndarray, dim: int) -> None:
+def gather_rows(pf: pq.ParquetFile, old_rows: np.ndarray, out: np.ndarray, dim: int) -> None:
     """``out[i] = vector[old_rows[i]]`` of the Parquet file, reading its vector column one row group at a time."""
     order = np.argsort(old_rows, kind="stable")
     sorted_rows = old_rows[order]
@@ -832,126 +482,9 @@ def _gather_rows(pf: pq.ParquetFile, old_rows: np.ndarray, out: np.ndarray, dim:
         start = stop
 
 
-def match_current(store, node_ids: pa.Array, node_kinds: pa.Array, dim: int, *,
-                  cache_dir=None) -> dict[str, Any] | None:
-    """Rows shared with the current version, matched on (node_kind, node_id); trained rows of it only.
-
-    The previous version is read once: a join on the key columns alone, then its vector column row group by row
-    group into a float32 array of the matched rows only. With ``cache_dir`` (a run's work folder), that array is a
-    memory-mapped ``.npy`` there, written by the first caller of the run and shared by the others (warm start,
-    drift and alignment); it is keyed by the current version, so a version published meanwhile is read afresh.
-
-    Returns ``{"version", "new_rows", "old_vectors"}`` (``old_vectors[i]``, float32, is the current vector of new
-    row ``new_rows[i]``; ``new_rows`` ascending), or None when there is no current version of the same dimension
-    or the id types differ.
-    """
-    cur = current_version(store)
-    if cur is None:
-        return None
-    folder = Path(cache_dir) / f"v{cur:06d}" if cache_dir is not None else None
-    if folder is not None:
-        cached = _cached_match(folder, cur, len(node_ids), int(dim))
-        if cached is not None:
-            return None if cached.get("unmatched") else cached
-    prev_path = Path(store) / _version_row(store, cur)["path"]
-    pf = pq.ParquetFile(prev_path)
-    vtype = pf.schema_arrow.field("vector").type
-    ok = (getattr(vtype, "list_size", None) == dim and
-          _id_family(pf.schema_arrow.field("node_id").type) == _id_family(node_ids.type) is not None)
-    if ok:
-        new_rows, old_rows = _matched_rows(prev_path, node_ids, node_kinds)
-    if folder is None:
-        if not ok:
-            return None
-        old_vec = np.empty((new_rows.size, dim), dtype=np.float32)
-        _gather_rows(pf, old_rows, old_vec, dim)
-        return {"version": int(cur), "new_rows": new_rows, "old_vectors": old_vec}
-    tmp = folder.with_name(f".{folder.name}-{os.getpid()}")
-    shutil.rmtree(tmp, ignore_errors=True)
-    tmp.mkdir(parents=True)
-    meta = {"version": int(cur), "n_new": len(node_ids), "dim": int(dim), "unmatched": not ok}
-    if ok:
-        np.save(tmp / "new_rows.npy", new_rows)
-        old_vec = np.lib.format.open_memmap(tmp / "old_vectors.npy", mode="w+", dtype=np.float32,
-                                            shape=(new_rows.size, dim))
-        _gather_rows(pf, old_rows, old_vec, dim)
-        old_vec.flush()
-        del old_vec
-    (tmp / "match.json").write_text(json.dumps(meta))  # last: the marker of a complete cache
-    shutil.rmtree(folder, ignore_errors=True)
-    os.replace(tmp, folder)
-    cached = _cached_match(folder, cur, len(node_ids), int(dim))
-    return None if cached is None or cached.get("unmatched") else cached
-
-
-def _blockwise_procrustes(old_vec, vectors: np.ndarray, new_rows: np.ndarray) -> tuple[np.ndarray, dict]:
-    """Orthogonal Procrustes of ``vectors[new_rows]`` onto ``old_vec`` (``R`` minimising ``||cur @ R - prev||_F``,
-    the ``U @ Vt`` of the SVD of ``cur.T @ prev``) and the residuals of
-    :func:`graphkit.evaluate.procrustes_residual`, summed in float64 over row blocks of both."""
-    from ..errors import ConfigError
-
-    dim = vectors.shape[1]
-    step = _block_rows(dim)
-    cross = np.zeros((dim, dim), dtype=np.float64)
-    for a in range(0, new_rows.size, step):
-        prev = np.asarray(old_vec[a:a + step], dtype=np.float64)
-        cur = vectors[new_rows[a:a + step]].astype(np.float64)
-        if not (np.isfinite(prev).all() and np.isfinite(cur).all()):
-            raise ConfigError("vectors to align hold NaN or infinite values")
-        cross += np.dot(cur.T, prev)  # np.dot hands the transposed view to BLAS; `@` took 10x longer here
-        del prev, cur
-    u, _, vt = np.linalg.svd(cross)
-    rot = u @ vt
-    num = raw = den = 0.0
-    for a in range(0, new_rows.size, step):
-        prev = np.asarray(old_vec[a:a + step], dtype=np.float64)
-        cur = vectors[new_rows[a:a + step]].astype(np.float64)
-        diff = np.dot(cur, rot)
-        diff -= prev
-        num += float(np.vdot(diff, diff))
-        del diff
-        cur -= prev
-        raw += float(np.vdot(cur, cur))
-        den += float(np.vdot(prev, prev))
-        del prev, cur
-    if den == 0.0:
-        raise ConfigError("prev is all zeros: the relative residual is undefined")
-    return rot, {"residual": float(np.sqrt(num / den)), "residual_unaligned": float(np.sqrt(raw / den))}
-
-
-def align_to_current(store, node_ids: pa.Array, node_kinds: pa.Array, vectors: np.ndarray,
-                     *, min_shared: int = 2, cache_dir=None) -> tuple[np.ndarray, dict[str, Any]]:
-    """Rotate new vectors onto the current version by orthogonal Procrustes (Schönemann 1966) on shared nodes.
-
-    Vectors are only defined up to rotation; aligning each version with the previous one keeps downstream
-    models that were trained on last week's vectors usable. Nodes are matched on (node_kind, node_id).
-
-    The cross-covariance and the residuals are summed block by block in float64 and the rotation is applied block
-    by block in place: beyond the new vectors and the previous version's matched rows (memory-mapped from
-    ``cache_dir`` when given, see :func:`match_current`), at most one block (``ALIGN_BLOCK_BYTES``) is allocated.
-    ``vectors`` is rotated in place when it is a writeable C-contiguous float32 array (else a float32 copy is).
-
-    Returns
-    -------
-    (ndarray of float32, dict)
-        The rotated vectors and ``{"aligned_to", "shared_nodes", "residual", "residual_unaligned"}``;
-        the vectors unchanged and ``{"aligned_to": None, ...}`` when there is nothing to align to.
-    """
-    info = {"aligned_to": None, "shared_nodes": 0, "residual": None, "residual_unaligned": None}
-    match = match_current(store, node_ids, node_kinds, vectors.shape[1], cache_dir=cache_dir)
-    if match is None:
-        return vectors, info
-    if match["new_rows"].size < max(min_shared, 2):
-        return vectors, {**info, "shared_nodes": int(match["new_rows"].size)}
-    cur, new_rows, old_vec = match["version"], match["new_rows"], match["old_vectors"]
-    rot, res = _blockwise_procrustes(old_vec, vectors, new_rows)
-    out = vectors
-    if not (isinstance(out, np.ndarray) and out.dtype == np.float32 and out.flags.c_contiguous
-            and out.flags.writeable):
-        out = np.array(vectors, dtype=np.float32, order="C")
-    step = _block_rows(out.shape[1])
-    for a in range(0, out.shape[0], step):
-        block = out[a:a + step]
-        block[...] = np.dot(block.astype(np.float64), rot)  # cast back to float32 on assignment
-    return out, {"aligned_to": int(cur), "shared_nodes": int(new_rows.size),
-                 "residual": float(res["residual"]), "residual_unaligned": float(res["residual_unaligned"])}
+def load_diagnostics(store, version: int) -> dict[str, np.ndarray]:
+    path = Path(store) / _version_dir(version) / "diagnostics.npz"
+    if not path.exists():
+        return {}
+    with np.load(path, allow_pickle=False) as z:
+        return {k: z[k] for k in z.files}
