@@ -53,7 +53,7 @@ def work_connection(temp_dir: Path | None = None, *, threads: int | None = None,
         Path(temp_dir).mkdir(parents=True, exist_ok=True)
         con.execute("set temp_directory = $d", {"d": str(temp_dir)})
     if threads:
-        con.execute(f"set threads = {int(threads)}")
+        con.execute("set threads = $t", {"t": int(threads)})
     if memory_limit:
         con.execute("set memory_limit = $m", {"m": memory_limit})
     con.execute("set preserve_insertion_order = false")
