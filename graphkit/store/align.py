@@ -56,17 +56,14 @@ def _matched_rows(prev_path: Path, node_ids: pa.Array, node_kinds: pa.Array) -> 
 
     A DuckDB join on (node_kind, node_id) that reads only those two columns and ``provisional`` of the previous
     version's Parquet file."""
-    from ..sql import work_connection
+    from ..sql import load_sql, work_connection
 
     con = work_connection(memory_limit="1GB")
     try:
         con.register("new_keys", pa.table({"node_kind": node_kinds.cast(pa.string()), "node_id": node_ids,
                                            "new_row": pa.array(np.arange(len(node_ids), dtype=np.int64))}))
         con.read_parquet(str(prev_path), file_row_number=True).create_view("prev")
-        rows = con.execute(
-            "select n.new_row, p.file_row_number::bigint as old_row from new_keys as n "
-            "join prev as p on p.node_kind = n.node_kind and p.node_id = n.node_id "
-            "where not p.provisional order by n.new_row").fetchnumpy()
+        rows = con.execute(load_sql("matched_rows")).fetchnumpy()
     finally:
         con.close()
     return (np.asarray(rows["new_row"], dtype=np.int64), np.asarray(rows["old_row"], dtype=np.int64))
