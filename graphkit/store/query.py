@@ -29,8 +29,8 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
     """Open a store's catalog read-only, unable to change or read any file.
 
     Views: ``embeddings`` (the current version, or ``version``), ``versions``, and ``embeddings_vNNNNNN`` for
-    every kept complete version; macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k)`` and
-    ``pair_similarity(a_id, b_id)``. Each version's native DuckDB copy is attached read-only, so the views scan
+    every kept complete version; macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k, kind :=,
+    id_kind :=)`` and ``pair_similarity(a_id, b_id)`` (``sql/macros.sql``, made afresh on the connection). Each version's native DuckDB copy is attached read-only, so the views scan
     DuckDB's own storage instead of Parquet (a top-10 query over a million vectors is about ten times faster).
 
     Once the catalog and the versions are attached (read-only) and the views made, DuckDB's local file system is
