@@ -189,3 +189,27 @@ def test_similar_macro_and_example_refuse_an_id_of_several_kinds(tmp_path, capsy
                         {"node_id": "m-9", "kind": "", "id_kind": ""}).fetchall()
     finally:
         con.close()
+
+
+def test_views_of_a_store_whose_path_needs_quoting(tmp_path):
+    """The catalog's views, written in with graphkit.sql.inline, read a store under a path with a quote and a
+    space, both through connect and opening the catalog with plain DuckDB."""
+    from graphkit.sql import Identifier, inline
+
+    store = tmp_path / "team's store"
+    vecs = np.eye(3, dtype=np.float32)
+    _publish(store, ["a", "b", "c"], vecs)
+    con = connect(store)
+    try:
+        assert con.sql("select count(*) from embeddings").fetchall() == [(3,)]
+    finally:
+        con.close()
+    raw = duckdb.connect(str(store / CATALOG), read_only=True)
+    try:
+        assert sorted(r[0] for r in raw.sql("select node_id from embeddings_v000001").fetchall()) == ["a", "b", "c"]
+    finally:
+        raw.close()
+    got = inline("select $a, $n from $t", {"a": "it's", "n": 3, "t": Identifier('s."x"')})
+    assert got == 'select \'it\'\'s\', 3 from "s"."""x"""'
+    with pytest.raises(TypeError, match=r"\$f: cannot write float"):
+        inline("select $f", {"f": 1.5})
