@@ -316,6 +316,44 @@ def test_feature_export(tmp_path, tmp_path_factory):
     assert bad.returncode == 2 and "did you mean 'customer'" in bad.stderr
 
 
+
+@pytest.mark.slow
+def test_foldin_publishes_the_pseudonyms_ingest_stored(tmp_path, monkeypatch):
+    """With hash_ids, fold-in takes the ids a refresh publishes (the pseudonyms in nodes.parquet, one id re-hashed
+    to check the key) instead of hashing every id again; a raw id then finds its provisional row through
+    `similar`. Pseudonyms: HMAC-SHA256 (RFC 2104) from the standard library's hmac as the reference."""
+    import hashlib
+    import hmac
+
+    from graphkit import ids as gi
+    from graphkit.foldin import fold_in
+    from graphkit.store import similar_nodes
+
+    key = "a-secret-key-of-the-team-0003"
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", key)
+    data = tmp_path / "data"
+    data.mkdir()
+    pq.write_table(pa.table({"s": ["acct-1", "acct-2", "acct-3"], "t": ["acct-2", "acct-3", "acct-1"]}),
+                   data / "e.parquet")
+    (tmp_path / "c.toml").write_text('[input]\nedges = "data/e.parquet"\nsource = "s"\ntarget = "t"\n'
+                                     'hash_ids = true\n[walks]\nper_node = 5\nlength = 5\n[train]\ndim = 8\n'
+                                     '[store]\npath = "store"\n')
+    graphkit.refresh(load_config(tmp_path / "c.toml"))
+    pq.write_table(pa.table({"s": ["acct-1", "acct-2", "acct-3", "acct-4"],
+                             "t": ["acct-2", "acct-3", "acct-1", "acct-1"]}), data / "e.parquet")
+    hashed = []
+    real = gi.hash_ids
+    monkeypatch.setattr(gi, "hash_ids", lambda ids, k: hashed.append(len(ids)) or real(ids, k))
+    result = fold_in(load_config(tmp_path / "c.toml"))
+    assert result["foldin_nodes"] == 1
+    assert max(hashed) == 4 and hashed.count(4) == 1  # ingest hashes the four ids once; later only a key check
+    pseudonym = hmac.new(key.encode(), b"acct-4", hashlib.sha256).hexdigest()
+    rows = {r["node_id"]: r for r in read_table(tmp_path / "store").to_pylist()}
+    assert rows[pseudonym]["provisional"] and "acct-4" not in rows
+    assert similar_nodes(tmp_path / "store", "acct-4", 1)[0][0] == hmac.new(key.encode(), b"acct-1",
+                                                                            hashlib.sha256).hexdigest()
+
+
 def _reader(store, stop, queue):
     """Read the current version over and over; every version k has 100*k rows all equal to k."""
     seen, bad, reads = set(), 0, 0
