@@ -486,6 +486,9 @@ def _published_ids(cfg: RefreshConfig, plan: dict):
     return node_ids, nodes.column("node_kind").combine_chunks()
 
 
+published_ids = _published_ids  # public: graphkit.foldin publishes the same ids
+
+
 def stage_evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict | None = None) -> dict[str, Any]:
     """Quality figures of the run: link prediction (held-out edges), node classification (labels), drift."""
     from .quality import evaluate_vectors
