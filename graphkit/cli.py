@@ -416,7 +416,7 @@ def cmd_report(args) -> int:
     import numpy as np
     import pyarrow.parquet as pq
 
-    from .report import projected_rows, write_report
+    from .report import projected_rows, report_title, write_report
     from .store import _gather_rows, list_versions, load_diagnostics
 
     rows = list_versions(args.store)
@@ -440,8 +440,7 @@ def cmd_report(args) -> int:
             labels = [x or None for x in diag["labels"][picked].tolist()]
     write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
                  vectors=vectors, labels=labels, vectors_total=total,
-                 title=f"graphkit store {Path(args.store).resolve().name}"
-                       + (f": version {current['version']} current" if current else ""))
+                 title=report_title(args.store))
     print(f"wrote {out}")
     return 0
 
