@@ -21,8 +21,10 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import threading
+from typing import Callable
 
-__all__ = ["guard_temporary_server", "server_log_path"]
+__all__ = ["guard_temporary_server", "start_temporary_server", "server_log_path"]
 
 _STOP_TIMEOUT = 5.0
 _LOG_KEEP_BYTES = 8 << 20
@@ -57,6 +59,39 @@ def guard_temporary_server() -> int | None:
     os.close(read_fd)
     _KEEP.append(write_fd)  # never closed by us: it closes when this process ends
     return watchdog.pid
+
+
+def start_temporary_server() -> Callable[[], int | None]:
+    """:func:`guard_temporary_server` in a background thread; returns the function that waits for it (and raises
+    what it raised).
+
+    The server boots in a process of its own for several seconds (its imports and database); meanwhile this process
+    can load what the run needs next. Prefect's server module is imported here first, in the calling thread, so
+    that the thread imports nothing while the caller imports (two threads importing one package's modules can
+    dead-lock on the import locks).
+    """
+    import psutil  # noqa: F401 - see above
+    from prefect.server.api import server  # noqa: F401 - see above
+    from prefect.settings import get_current_settings  # noqa: F401 - see above
+
+    outcome: dict = {}
+
+    def target():
+        try:
+            outcome["pid"] = guard_temporary_server()
+        except BaseException as exc:  # noqa: BLE001 - handed to the waiting caller
+            outcome["error"] = exc
+
+    thread = threading.Thread(target=target, name="graphkit-server-start", daemon=True)
+    thread.start()
+
+    def wait() -> int | None:
+        thread.join()
+        if "error" in outcome:
+            raise outcome["error"]
+        return outcome.get("pid")
+
+    return wait
 
 
 class _OwnSessionSubprocess:
