@@ -391,9 +391,12 @@ def _status(versions) -> dict:
         facts.append(f"{edges:,.0f} edges")
     if newest.get("dim"):
         facts.append(f"{newest['dim']} dimensions")
-    total = sum(_numeric_timings(newest).values())
-    if total:
+    timings = _numeric_timings(newest)
+    total = sum(timings.values())
+    if total and any(k not in STAGE_TIMINGS for k in timings):
         facts.append(f"{total:.1f} s of run time recorded")
+    elif total:  # the run's own page, drawn before its fixed costs are known (they are in the catalog)
+        facts.append(f"{total:.1f} s in the stages")
     lines.insert(0, ", ".join(f for f in facts if f) + ".")
     return {"css": css, "headline": headline, "lines": lines}
 

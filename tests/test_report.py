@@ -178,6 +178,7 @@ def test_report_opens_with_the_verdict(tmp_path):
     assert '<tr class="failed">' in html  # the failed row is marked in the versions table
     ok = write_report(tmp_path / "ok.html", versions=_versions(2), title="t").read_text(encoding="utf-8")
     assert "Version 2 published" in ok and "It is the current version." in ok
+    assert "10.2 s in the stages" in ok  # only stage entries: a run's own page, before its fixed costs are known
     assert "No quality gates configured" in ok
     first = write_report(tmp_path / "first.html", versions=_versions(1), title="t").read_text(encoding="utf-8")
     assert "nothing to compare with" in first
