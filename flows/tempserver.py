@@ -58,7 +58,25 @@ def guard_temporary_server() -> int | None:
                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     os.close(read_fd)
     _KEEP.append(write_fd)  # never closed by us: it closes when this process ends
+    _stop_without_waiting(server)
     return watchdog.pid
+
+
+def _stop_without_waiting(server) -> None:
+    """At exit, send the server SIGTERM and leave its waiting to the watchdog: Prefect's own exit handler waits up
+    to 5 s for the server's graceful shutdown, which a finished run was seen to spend whole. The handler keeps its
+    place among the exit handlers (registered when the server started, so it runs after those of the flow's log
+    and event workers, which still talk to the server)."""
+    import atexit
+
+    process = server.server_process
+
+    def stop():
+        if process.poll() is None:
+            process.terminate()  # the watchdog, which sees this process end, kills it if it is still there in 5 s
+
+    atexit.unregister(server.stop)
+    atexit.register(stop)
 
 
 def start_temporary_server() -> Callable[[], int | None]:
