@@ -5,8 +5,9 @@ stops it at exit. A run killed with SIGKILL (the kernel's out-of-memory killer, 
 to stop it, and the server stays behind, holding its port and the Prefect database. :func:`guard_temporary_server`
 starts that server up front and, beside it, a small watchdog process in its own session that waits on a pipe
 whose only writer is this process: the pipe closes when this process ends, however it ends, and the watchdog
-then stops the server if it is still running. A normal exit is unchanged (Prefect stops its server at exit; the
-watchdog finds it gone).
+then stops the server if it is still running. At a normal exit the server gets SIGTERM from this process's exit
+handler, which does not wait for its graceful shutdown (Prefect's own handler waits up to 5 s): the watchdog
+waits for it and kills it if it is still there 5 s later.
 
 The server runs in a session and process group of its own. A terminal's Ctrl-C sends SIGINT to its whole
 foreground process group; were the server in it, it would die at the same moment as the flow, and the flow's
