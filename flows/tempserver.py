@@ -5,8 +5,9 @@ stops it at exit. A run killed with SIGKILL (the kernel's out-of-memory killer, 
 to stop it, and the server stays behind, holding its port and the Prefect database. :func:`guard_temporary_server`
 starts that server up front and, beside it, a small watchdog process in its own session that waits on a pipe
 whose only writer is this process: the pipe closes when this process ends, however it ends, and the watchdog
-then stops the server if it is still running. A normal exit is unchanged (Prefect stops its server at exit; the
-watchdog finds it gone).
+then stops the server if it is still running. At a normal exit the server gets SIGTERM from this process's exit
+handler, which does not wait for its graceful shutdown (Prefect's own handler waits up to 5 s): the watchdog
+waits for it and kills it if it is still there 5 s later.
 
 The server runs in a session and process group of its own. A terminal's Ctrl-C sends SIGINT to its whole
 foreground process group; were the server in it, it would die at the same moment as the flow, and the flow's
@@ -21,8 +22,10 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import threading
+from typing import Callable
 
-__all__ = ["guard_temporary_server", "server_log_path"]
+__all__ = ["guard_temporary_server", "start_temporary_server", "server_log_path"]
 
 _STOP_TIMEOUT = 5.0
 _LOG_KEEP_BYTES = 8 << 20
@@ -56,7 +59,58 @@ def guard_temporary_server() -> int | None:
                                 stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     os.close(read_fd)
     _KEEP.append(write_fd)  # never closed by us: it closes when this process ends
+    _stop_without_waiting(server)
     return watchdog.pid
+
+
+def _stop_without_waiting(server) -> None:
+    """At exit, send the server SIGTERM and leave its waiting to the watchdog: Prefect's own exit handler waits up
+    to 5 s for the server's graceful shutdown, which a finished run was seen to spend whole. The handler keeps its
+    place among the exit handlers (registered when the server started, so it runs after those of the flow's log
+    and event workers, which still talk to the server)."""
+    import atexit
+
+    process = server.server_process
+
+    def stop():
+        if process.poll() is None:
+            process.terminate()  # the watchdog, which sees this process end, kills it if it is still there in 5 s
+
+    atexit.unregister(server.stop)
+    atexit.register(stop)
+
+
+def start_temporary_server() -> Callable[[], int | None]:
+    """:func:`guard_temporary_server` in a background thread; returns the function that waits for it (and raises
+    what it raised).
+
+    The server boots in a process of its own for several seconds (its imports and database); meanwhile this process
+    can load what the run needs next. Prefect's server module is imported here first, in the calling thread, so
+    that the thread imports nothing while the caller imports (two threads importing one package's modules can
+    dead-lock on the import locks).
+    """
+    import psutil  # noqa: F401 - see above
+    from prefect.server.api import server  # noqa: F401 - see above
+    from prefect.settings import get_current_settings  # noqa: F401 - see above
+
+    outcome: dict = {}
+
+    def target():
+        try:
+            outcome["pid"] = guard_temporary_server()
+        except BaseException as exc:  # noqa: BLE001 - handed to the waiting caller
+            outcome["error"] = exc
+
+    thread = threading.Thread(target=target, name="graphkit-server-start", daemon=True)
+    thread.start()
+
+    def wait() -> int | None:
+        thread.join()
+        if "error" in outcome:
+            raise outcome["error"]
+        return outcome.get("pid")
+
+    return wait
 
 
 class _OwnSessionSubprocess:

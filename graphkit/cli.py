@@ -15,7 +15,7 @@ import signal
 import sys
 from pathlib import Path
 
-from .errors import GateFailure, InputError, StoreError
+from .errors import GateFailure, InputError
 
 __all__ = ["main"]
 
@@ -66,12 +66,18 @@ def cmd_refresh(args) -> int:
             with RUN_CLOCK.span("preflight"):
                 preflight(cfg)  # bad input fails here, within seconds, before Prefect starts
             _prefect_env()
-            from graphkit.flows.artifacts import console_progress
-            from graphkit.flows.refresh import refresh_flow
-            from graphkit.flows.tempserver import guard_temporary_server
+            from graphkit.flows.tempserver import start_temporary_server
 
             with RUN_CLOCK.span("server_start"):
-                guard_temporary_server()  # a killed run must not leave Prefect's temporary server running
+                # a killed run must not leave Prefect's temporary server running (see tempserver); it boots in
+                # its own process while this one loads the flow and the stages' libraries
+                server_ready = start_temporary_server()
+            from graphkit.flows.artifacts import console_progress
+            from graphkit.flows.refresh import refresh_flow
+
+            _load_stage_libraries()
+            with RUN_CLOCK.span("server_start"):
+                server_ready()
             _quiet_flow_sigterm(guard)
             _no_tracebacks_for_expected_outcomes()
             before = _latest_version(cfg.store_path)
@@ -95,6 +101,25 @@ def cmd_refresh(args) -> int:
                            f"version {version} was published")
             return 0
     return 0
+
+
+#: Libraries the stages import on first use, loaded while the temporary server boots (else each one's import
+#: would be on the run's path: about 2 s together, scikit-learn the most).
+_STAGE_LIBRARIES = ("numba", "distributed", "scipy.sparse.csgraph", "scipy.stats", "sklearn.linear_model",
+                    "sklearn.metrics", "sklearn.model_selection", "sklearn.multiclass", "sklearn.pipeline",
+                    "sklearn.preprocessing", "graphkit.corpus", "graphkit.walks", "graphkit.train",
+                    "graphkit.evaluate", "graphkit.quality", "graphkit.store", "graphkit.report", "jinja2",
+                    "matplotlib.figure", "matplotlib.backends.backend_agg")
+
+
+def _load_stage_libraries() -> None:
+    from importlib import import_module
+
+    for name in _STAGE_LIBRARIES:
+        try:
+            import_module(name)
+        except ImportError:  # a stage that needs it says so itself
+            pass
 
 
 def _quiet_flow_sigterm(guard) -> None:
@@ -295,98 +320,20 @@ def make_parent(out: Path, option: str = "--out") -> None:
         raise InputError(f"{option} {out}: cannot create the folder {out.parent} ({exc.strerror or exc})") from None
 
 
-def spread_vectors(table, prefix: str = "emb_"):
-    """``table`` with its fixed-size ``vector`` column replaced by float32 columns ``emb_000 …`` (for CSV)."""
-    import pyarrow as pa
-
-    vec = table.column("vector").combine_chunks()
-    dim = vec.type.list_size
-    flat = vec.flatten().to_numpy(zero_copy_only=False).reshape(-1, dim)
-    out = table.drop_columns(["vector"])
-    for i in range(dim):
-        out = out.append_column(f"{prefix}{i:03d}", pa.array(flat[:, i]))
-    return out
-
-
 def cmd_export(args) -> int:
-    import pyarrow.csv as pcsv
-    import pyarrow.parquet as pq
+    from .store import connect, export_version
 
-    from .store import connect
-
-    con = connect(args.store, version=args.version)
-    try:
-        out, fmt = output_file(args.out, store=args.store)
-        table = con.sql("select node_id, node_kind, vector from embeddings").to_arrow_table()
-    finally:
-        con.close()
+    connect(args.store, version=args.version).close()  # a missing store or version first, then the output's checks
+    out, fmt = output_file(args.out, store=args.store)
     make_parent(out)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    try:
-        if fmt == "csv":  # one numeric column per dimension: what spreadsheets, pandas and SQL loaders read
-            pcsv.write_csv(spread_vectors(table), tmp)
-        else:
-            pq.write_table(table, tmp, compression="zstd")
-        os.replace(tmp, out)
-    finally:
-        tmp.unlink(missing_ok=True)
-    print(f"wrote {table.num_rows} rows to {out}")
+    n = export_version(args.store, out, version=args.version, fmt=fmt)
+    print(f"wrote {n} rows to {out}")
     return 0
 
 
-def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None, kind: str | None = None,
-                  id_kind: str | None = None, salt_env: str | None = None) -> list[tuple]:
-    """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; always bound as a parameter).
-
-    ``kind`` keeps only results of that node kind; ``id_kind`` picks the query node when its id exists under
-    several kinds. In a version published with hashed ids (lineage ``hashed_ids``) a raw id is hashed with the key
-    in environment variable ``salt_env`` (default: the run's ``[input] hash_salt_env``, else ``GRAPHKIT_ID_SALT``);
-    a pseudonym given as is is used as is. The results are the store's ids (pseudonyms in a hashed store).
-
-    Returns (node_id, node_kind, similarity) tuples, most similar first.
-    """
-    from .store import _version_row, connect
-
-    con = connect(store, version=version)
-    try:
-        def kinds_of(ident):
-            return [k for (k,) in con.execute(
-                "select node_kind from embeddings where node_id::varchar = $id and ($kind is null or node_kind = $kind)",
-                {"id": ident, "kind": id_kind}).fetchall()]
-
-        query_id, kinds = node_id, kinds_of(node_id)
-        params = _version_row(Path(store), version).get("params") or {}
-        if not kinds and (params.get("lineage") or {}).get("hashed_ids"):
-            from .ids import hash_ids, salt_from_env
-
-            env = salt_env or (params.get("input") or {}).get("hash_salt_env") or "GRAPHKIT_ID_SALT"
-            try:
-                key = salt_from_env(env)
-            except InputError as exc:
-                raise InputError(f"{store}: the version was published with hashed ids; looking up the raw id "
-                                 f"{node_id!r} needs its key: {exc}") from None
-            query_id = hash_ids([node_id], key)[0].as_py()
-            kinds = kinds_of(query_id)
-        if not kinds:
-            raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings"
-                             + (f" as kind {id_kind!r}" if id_kind else ""))
-        if len(kinds) > 1:
-            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; "
-                             "pass --id-kind")
-        return con.execute(
-            "with q as (select vector from embeddings where node_id::varchar = $id and node_kind = $qkind) "
-            "select e.node_id, e.node_kind, array_cosine_similarity(e.vector, q.vector) as similarity "
-            "from embeddings as e, q where not (e.node_id::varchar = $id and e.node_kind = $qkind) "
-            "and ($kind is null or e.node_kind = $kind) "
-            "order by similarity desc, e.node_id limit $k",
-            {"id": query_id, "qkind": kinds[0], "kind": kind, "k": int(top)}).fetchall()
-    finally:
-        con.close()
-
-
 def cmd_similar(args) -> int:
-    if args.top < 1:
-        raise InputError(f"--top must be >= 1, got {args.top}")
+    from .store import similar_nodes
+
     rows = similar_nodes(args.store, args.node_id, args.top, args.version, kind=args.kind, id_kind=args.id_kind,
                          salt_env=args.salt_env)
     if args.json:
@@ -399,35 +346,17 @@ def cmd_similar(args) -> int:
 
 
 def cmd_report(args) -> int:
-    import numpy as np
-    import pyarrow.parquet as pq
+    from .report import report_title, write_report
+    from .store import list_versions, report_inputs
 
-    from .report import projected_rows, write_report
-    from .store import _gather_rows, list_versions, load_diagnostics
-
-    rows = list_versions(args.store)
     if args.out:  # checked before the vectors are read
+        list_versions(args.store)  # a missing store first
         out, _ = output_file(args.out, formats={".html": "html", ".htm": "html"})
     else:
         out = Path(args.store) / "reports" / "report.html"
-    current = next((r for r in rows if r["is_current"]), None)
-    vectors, diag, labels, total = None, {}, None, None
-    if current is not None:
-        # only the rows the projection draws (the same seeded subset the run's own report drew), read one row
-        # group at a time: the version is never held whole
-        pf = pq.ParquetFile(Path(args.store) / current["path"])
-        total = pf.metadata.num_rows
-        dim = pf.schema_arrow.field("vector").type.list_size
-        picked = projected_rows(total)
-        vectors = np.empty((picked.size, dim), dtype=np.float32)
-        _gather_rows(pf, picked, vectors, dim)
-        diag = load_diagnostics(args.store, current["version"])
-        if diag.get("labels") is not None and len(diag["labels"]) == total:
-            labels = [x or None for x in diag["labels"][picked].tolist()]
-    write_report(out, versions=rows, degrees=diag.get("degrees"), visit_counts=diag.get("visit_counts"),
-                 vectors=vectors, labels=labels, vectors_total=total,
-                 title=f"graphkit store {Path(args.store).resolve().name}"
-                       + (f": version {current['version']} current" if current else ""))
+    data = report_inputs(args.store)
+    data.pop("current")
+    write_report(out, **data, title=report_title(args.store))
     print(f"wrote {out}")
     return 0
 
@@ -467,10 +396,9 @@ def cmd_foldin(args) -> int:
 
 def cmd_features(args) -> int:
     from .features import export_features
+    from .store import version_row
 
-    from .store import _version_row
-
-    _version_row(Path(args.store), args.version)  # a missing store or version first, before the output's checks
+    version_row(Path(args.store), args.version)  # a missing store or version first, before the output's checks
     out, fmt = output_file(args.out, store=args.store)
     if args.csv and fmt != "csv":
         raise InputError(f"--csv writes CSV, but --out {args.out} names a {fmt} file; name it .csv")
@@ -484,7 +412,7 @@ def cmd_features(args) -> int:
 def cmd_sql(args) -> int:
     import duckdb
 
-    from .store import connect
+    from .store import connect, write_aside
 
     if (args.query is None) == (args.file is None):
         raise InputError("sql: give either a query or --file FILE, not both")
@@ -516,13 +444,8 @@ def cmd_sql(args) -> int:
                 _write_result(rel, sys.stdout, args.format, args.max_rows)
                 return 0
             make_parent(out)
-            tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-            try:
-                with open(tmp, "w", newline="", encoding="utf-8") as fh:
-                    n = _write_result(rel, fh, args.format, args.max_rows)
-                os.replace(tmp, out)
-            finally:
-                tmp.unlink(missing_ok=True)
+            with write_aside(out) as tmp, open(tmp, "w", newline="", encoding="utf-8") as fh:
+                n = _write_result(rel, fh, args.format, args.max_rows)
         except duckdb.Error as exc:
             raise InputError(_sql_error(exc)) from None
     finally:
@@ -616,7 +539,7 @@ def _write_result(rel, fh, fmt: str, max_rows: int) -> int:
     for r in body:
         fh.write(line(r) + "\n")
     note = f"({len(body)} row{'s' if len(body) != 1 else ''}"
-    fh.write(note + (f" shown; more not shown, see --max-rows)" if more else ")") + "\n")
+    fh.write(note + (" shown; more not shown, see --max-rows)" if more else ")") + "\n")
     return len(body)
 
 
@@ -826,22 +749,34 @@ def _dispatch(args) -> int:
 def run(argv=None) -> None:
     """The ``graphkit`` program: :func:`main`, then exit with its code.
 
-    After a stop by SIGINT or SIGTERM the process ends right away once Prefect's exit handlers have run (they
-    flush the run's logs and stop the temporary server): left to the interpreter's own shutdown, a refresh
-    interrupted while Dask was starting was seen to end by SIGINT (exit -2) after its line, instead of 130.
+    The process ends right away once its threads are joined and the exit handlers have run (Prefect's flush the
+    run's logs and stop the temporary server; after a stop by SIGINT or SIGTERM the threads are not waited for):
+    left to the interpreter's own shutdown, a refresh interrupted while Dask was starting was seen to end by
+    SIGINT (exit -2) after its line, instead of 130, and a finished refresh spent seconds unloading modules.
     """
     code = main(argv)
-    if _STOPPED:
-        import atexit
+    import atexit
+    import threading
 
-        for stream in (sys.stdout, sys.stderr):
-            try:
-                stream.flush()
-            except (OSError, ValueError):
-                pass
-        atexit._run_exitfuncs()
-        os._exit(code)
-    sys.exit(code)
+    # Every command ends the same way: its threads are joined and the exit handlers run (Prefect's flush the
+    # run's logs and stop the temporary server), then the process ends without the interpreter's teardown of
+    # every loaded module, which took 1 to 4 s after a refresh (numba, Prefect, Dask, scikit-learn).
+    if not _STOPPED:
+        for thread in threading.enumerate():
+            if thread is not threading.current_thread() and not thread.daemon:
+                thread.join()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    atexit._run_exitfuncs()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    os._exit(code)
 
 
 if __name__ == "__main__":

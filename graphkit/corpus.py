@@ -45,10 +45,12 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import progress
+from .checks import check_int as _check_int
 from .errors import ConfigError
 from .faults import fault_point
 from .graph import SparseGraph
-from .walks import (_check_int, _prepare, _run, alias_table, check_walk_options, check_walk_params, count_restarts,
+from .io import atomic_output, write_text_atomic
+from .walks import (alias_table, check_walk_options, check_walk_params, count_restarts, prepare_walker, run_walks,
                     walk_diagnostics)
 
 __all__ = ["write_walk_corpus", "WalkCorpus", "accumulate_visits", "count_corpus_visits"]
@@ -77,15 +79,8 @@ def shard_name(index: int) -> str:
     return f"shard-{index:05d}.parquet"
 
 
-def _tmp_name(final: Path) -> Path:
-    # The random part keeps two attempts at the same shard (a Dask retry, a stale worker) from sharing a temp file.
-    return final.with_name(f"{final.name}.tmp-{uuid.uuid4().hex}")
-
-
 def _write_json_atomic(path: Path, payload: dict) -> None:
-    tmp = _tmp_name(path)
-    tmp.write_text(json.dumps(payload, indent=1, sort_keys=True))
-    os.replace(tmp, path)
+    write_text_atomic(path, json.dumps(payload, indent=1, sort_keys=True))
 
 
 # ---------------------------------------------------------------------------------------------------- planning
@@ -197,10 +192,9 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
     graph = SparseGraph.load(graph_dir, mmap=True)
     alias = np.load(alias_path, mmap_mode="r") if alias_path is not None else None
     # check=False: the driver checked the graph files once (sorted rows for second-order walks)
-    walker = _prepare(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
+    walker = prepare_walker(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
     corpus_dir = Path(corpus_dir)
     final_parquet = corpus_dir / shard_name(index)
-    tmp_parquet = _tmp_name(final_parquet)
     schema = pa.schema([pa.field("walk", pa.list_(pa.int32(), length), nullable=False)],
                        metadata={"graphkit.first_walk": str(start), "graphkit.seed": str(seed)})
     n_tokens = n_restarts = 0
@@ -208,11 +202,12 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
         pool = _POOLS.get(visits_pool) if visits_pool is not None else None
     visits = pool.take() if pool is not None else None
     try:
-        with pq.ParquetWriter(tmp_parquet, schema, compression="zstd", use_dictionary=False) as writer:
+        with atomic_output(final_parquet) as tmp_parquet, \
+                pq.ParquetWriter(tmp_parquet, schema, compression="zstd", use_dictionary=False) as writer:
             for a in range(start, stop, row_group_walks):
                 b = min(stop, a + row_group_walks)
                 # threads=1: the Dask worker threads are the parallelism (numba threads x Dask threads <= cores)
-                walks = _run(walker, a, b, length, seed, threads=1)
+                walks = run_walks(walker, a, b, length, seed, threads=1)
                 if visits is not None:
                     n_tokens += accumulate_visits(walks, visits.counts)
                 else:
@@ -225,7 +220,6 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
             if start == stop:
                 writer.write_table(schema.empty_table())
             writer.add_key_value_metadata({_META_TOKENS: str(n_tokens), _META_RESTARTS: str(n_restarts)})
-        os.replace(tmp_parquet, final_parquet)
         if visits is not None:
             visits.shards.append(index)
     except BaseException:
@@ -233,7 +227,6 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
             visits.spoiled = True  # holds part of a shard that is not complete
         raise
     finally:
-        tmp_parquet.unlink(missing_ok=True)
         if visits is not None:
             pool.give(visits)
     return {"index": index, "n_tokens": n_tokens, "n_restarts": n_restarts, "counted": visits is not None}
@@ -321,7 +314,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
         n_shards = _check_int("n_shards", n_shards, 1, max(1, n_walks))
     if (p, q) != (1.0, 1.0):
         # once here rather than in every task: the shard tasks run with check=False
-        _prepare(graph, weighted=False, p=p, q=q, dead_end=dead_end)
+        prepare_walker(graph, weighted=False, p=p, q=q, dead_end=dead_end)
     corpus_dir = Path(corpus_dir).resolve()
 
     if dask_address is None:
@@ -392,8 +385,7 @@ def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
     into place (so a present file is a complete one); reused by a rerun."""
     final = corpus_dir / ALIAS
     if not final.is_file():
-        tmp = _tmp_name(final)
-        try:
+        with atomic_output(final) as tmp:
             if graph.n_edges:
                 table = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.uint64, shape=(graph.n_edges,))
                 alias_table(graph, out=table)
@@ -402,9 +394,6 @@ def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
             else:  # an empty array cannot be memory-mapped
                 with open(tmp, "wb") as f:
                     np.save(f, np.empty(0, dtype=np.uint64))
-            os.replace(tmp, final)
-        finally:
-            tmp.unlink(missing_ok=True)
     return final
 
 
@@ -457,13 +446,8 @@ def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, p
     if int(visits.sum()) != manifest["n_tokens"]:
         raise ConfigError(f"walk corpus {str(corpus_dir)!r}: the shards hold {int(visits.sum())} tokens, their "
                           f"footers say {manifest['n_tokens']}; delete the folder and run again")
-    tmp = _tmp_name(corpus_dir / VISITS)
-    try:
-        with open(tmp, "wb") as f:
-            np.save(f, visits)
-        os.replace(tmp, corpus_dir / VISITS)
-    finally:
-        tmp.unlink(missing_ok=True)
+    with atomic_output(corpus_dir / VISITS) as tmp, open(tmp, "wb") as f:
+        np.save(f, visits)
     manifest["visits"] = VISITS
     manifest["diagnostics"] = _diagnostics(graph, visits, shards, plan["per_node"])
     _write_json_atomic(corpus_dir / MANIFEST, manifest)

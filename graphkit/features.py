@@ -3,19 +3,21 @@
 from __future__ import annotations
 
 import difflib
-import os
 from pathlib import Path
 from typing import Any
 
 import duckdb
+import pyarrow as pa
 
 from .errors import EdgeTableError, StoreError
-from .sql import quote_ident, sql_literal
-from .store import _version_files, _version_row
+from .sql import Identifier, inline, load_sql, quote_ident
+from .store import spread_vectors, version_files, version_row, write_aside
 
 __all__ = ["export_features"]
 
 _CSV_SUFFIXES = (".csv", ".tsv", ".csv.gz", ".tsv.gz")
+#: Entity rows joined, spread and written at a time.
+_BATCH_ROWS = 65_536
 
 
 def _first_line(exc) -> str:
@@ -76,8 +78,8 @@ def export_features(store, entities, on: str, out, *, version: int | None = None
     if fmt not in ("parquet", "csv"):
         raise StoreError(f"format must be parquet or csv, got {fmt!r}")
     store = Path(store)
-    row = _version_row(store, version)
-    parquet, native = _version_files(store, row["path"])
+    row = version_row(store, version)
+    parquet, native = version_files(store, row["path"])
     dim = int(row["dim"])
     out = Path(out)
     con = duckdb.connect()
@@ -87,47 +89,54 @@ def export_features(store, entities, on: str, out, *, version: int | None = None
             close = difflib.get_close_matches(on, ent.columns, n=1)
             hint = f" (did you mean {close[0]!r}?)" if close else f" (columns: {', '.join(ent.columns)})"
             raise EdgeTableError(f"{entities}: no column {on!r} for --on{hint}")
-        if "__entity_row" in ent.columns or any(c.startswith(prefix) for c in ent.columns):
+        if {"__entity_row", "__entity_key", "__vector"} & set(ent.columns) or any(c.startswith(prefix)
+                                                                                   for c in ent.columns):
             raise EdgeTableError(f"{entities}: columns named {prefix}* would be overwritten; rename them first")
-        ent.project(f"*, row_number() over () as __entity_row").create_view("entities")
+        # the --on column is a name, which cannot be bound: quoted by graphkit.sql
+        ent.project(f"*, row_number() over () as __entity_row, {quote_ident(on)}::varchar as __entity_key") \
+            .create_view("entities")
         if native.exists():
-            con.execute(f"attach {sql_literal(str(native))} as version_db (read_only)")
-            con.execute("create view vectors as select node_id, node_kind, vector from version_db.embeddings")
+            con.execute(inline("attach $path as version_db (read_only)", {"path": str(native)}))  # no bound path
+            source = Identifier("version_db.embeddings")
         else:
-            con.execute(f"create view vectors as select node_id, node_kind, vector::float[{dim}] as vector "
-                        f"from read_parquet({sql_literal(str(parquet))})")
-        kinds = [k for (k,) in con.sql("select distinct node_kind from vectors order by 1").fetchall()]
+            source = Identifier("version_parquet")
+            con.read_parquet(str(parquet)).create_view(source)
+        con.execute(inline(load_sql("session_embeddings"), {"view": Identifier("vectors"), "source": source,
+                                                            "dim": dim}))
+        kinds = [k for (k,) in con.sql(load_sql("version_kinds")).fetchall()]
         if kind is None and len(kinds) > 1:
             raise StoreError(f"{store}: version {row['version']} holds nodes of kinds {', '.join(kinds)}; "
                              "pass --kind")
         if kind is not None and kind not in kinds:
             raise StoreError(f"{store}: version {row['version']} has no nodes of kind {kind!r} "
                              f"(kinds: {', '.join(kinds)})")
-        spread = ", ".join(f"v.vector[{i + 1}] as {prefix}{i:03d}" for i in range(dim))
-        kind_filter = "" if kind is None else "where node_kind = $kind"
-        query = (f"with v as (select node_id::varchar as key, vector from vectors {kind_filter}) "
-                 f"select e.* exclude (__entity_row), {spread} from entities as e "
-                 f"left join v on v.key = e.{quote_ident(on)}::varchar order by e.__entity_row")
-        params = {} if kind is None else {"kind": kind}
-        counts = con.execute(f"with v as (select node_id::varchar as key from vectors {kind_filter}) "
-                             f"select count(*), count(v.key) from entities as e "
-                             f"left join v on v.key = e.{quote_ident(on)}::varchar", params).fetchall()[0]
         try:
             out.parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise StoreError(f"{out}: cannot create the folder {out.parent} ({exc.strerror or exc})") from None
-        tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-        rel = con.sql(query, params=params)
+        joined = con.sql(load_sql("features"), params={"kind": kind}).to_arrow_reader(_BATCH_ROWS)
+        counts = [0, 0]
+
+        def spread():  # batch by batch: the entity table is never held whole
+            for batch in joined:
+                counts[0] += batch.num_rows
+                counts[1] += batch.num_rows - batch.column("__vector").null_count
+                yield from spread_vectors(pa.Table.from_batches([batch]), prefix, "__vector").to_batches()
+
+        schema = spread_vectors(joined.schema.empty_table(), prefix, "__vector").schema
+        writer = con.cursor()  # the joined rows stream from `con` while this connection writes them
         try:
-            if fmt == "csv":
-                rel.write_csv(str(tmp))
-            else:
-                rel.write_parquet(str(tmp), compression="zstd")
-            os.replace(tmp, out)
+            writer.register("feature_rows", pa.RecordBatchReader.from_batches(schema, spread()))
+            with write_aside(out) as tmp:
+                rel = writer.table("feature_rows")
+                if fmt == "csv":
+                    rel.write_csv(str(tmp))
+                else:
+                    rel.write_parquet(str(tmp), compression="zstd")
         finally:
-            tmp.unlink(missing_ok=True)
+            writer.close()
     finally:
         con.close()
-    n_rows, n_with = int(counts[0]), int(counts[1])
+    n_rows, n_with = counts
     return {"rows": n_rows, "with_vector": n_with, "without_vector": n_rows - n_with,
             "version": int(row["version"]), "dim": dim}

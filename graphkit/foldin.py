@@ -2,14 +2,11 @@
 
 from __future__ import annotations
 
-import shutil
 import time
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from .config import RefreshConfig
 from .errors import StoreError
@@ -69,8 +66,7 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
         ``version`` (the new one, or None), ``base_version``, ``foldin_candidates`` (new nodes found),
         ``foldin_nodes`` (given a vector) and ``foldin_without_known_neighbours``.
     """
-    from .ids import hash_ids, salt_from_env
-    from .pipeline import plan_run, run_lock, stage_ingest
+    from .pipeline import finish_run, plan_run, published_ids, run_lock, stage_graph, stage_ingest
     from .store import current_version, publish_embeddings, read_table
 
     t0 = time.perf_counter()
@@ -79,16 +75,15 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
         raise StoreError(f"{cfg.store_path}: no current version to fold new nodes into; run `graphkit refresh`")
     plan = plan_run(cfg)
     with run_lock(cfg):
+        # the refresh's own stages: the same ingest folder (reused when a refresh of this input left it), the
+        # graph's checks, and the ids as a refresh publishes them (with hash_ids, the pseudonyms ingest stored)
         ingest = stage_ingest(cfg, plan)
-        graph = SparseGraph.load(Path(plan["ingest_dir"]) / "graph")
-        nodes = pq.read_table(Path(plan["ingest_dir"]) / "nodes.parquet")
-        ids = nodes.column("node_id").combine_chunks()
-        if cfg.input.hash_ids:
-            ids = hash_ids(ids, salt_from_env(cfg.input.hash_salt_env))
+        graph = SparseGraph.load(stage_graph(cfg, plan)["graph_dir"])
+        ids, kinds = published_ids(cfg, plan)
         current = read_table(cfg.store_path, base)
         dim = current.schema.field("vector").type.list_size
         cur_vec = current.column("vector").combine_chunks().flatten().to_numpy().reshape(-1, dim)
-        graph_keys = pa.table({"node_kind": nodes.column("node_kind"), "node_id": ids,
+        graph_keys = pa.table({"node_kind": kinds, "node_id": ids,
                                "idx": pa.array(np.arange(graph.n_nodes))})
         cur_keys = pa.table({"node_kind": current.column("node_kind"), "node_id": current.column("node_id"),
                              "row": pa.array(np.arange(current.num_rows)),
@@ -109,11 +104,11 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
         new = targets[has]
         metrics = {"foldin_nodes": int(new.size), "foldin_without_known_neighbours": int(targets.size - new.size)}
         if new.size == 0:  # a version identical to the current one would only push an older one out of retention
-            shutil.rmtree(plan["ingest_dir"], ignore_errors=True)
+            finish_run(plan)
             return {"version": None, "base_version": int(base), "foldin_candidates": int(targets.size), **metrics}
         table = pa.concat_tables([
             current,
-            pa.table({"node_id": ids.take(pa.array(new)), "node_kind": nodes.column("node_kind").take(pa.array(new)),
+            pa.table({"node_id": ids.take(pa.array(new)), "node_kind": kinds.take(pa.array(new)),
                       "provisional": pa.array(np.ones(new.size, bool)),
                       "vector": pa.FixedSizeListArray.from_arrays(pa.array(means[has].ravel()), dim)}),
         ])
@@ -122,9 +117,10 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
             cfg.store_path, table.column("node_id").combine_chunks(), vectors,
             node_kinds=table.column("node_kind").combine_chunks(),
             provisional=table.column("provisional").to_numpy(zero_copy_only=False),
-            params={**plan["params"], "lineage": {"fold_in_of": int(base), "warnings": ingest.get("warnings", [])}},
+            params={**plan["params"], "lineage": {"fold_in_of": int(base), "warnings": ingest.get("warnings", []),
+                                                "hashed_ids": cfg.input.hash_ids}},
             fingerprint=plan["fingerprint"], counts={**ingest["counts"], **metrics},
             timings={"foldin": round(time.perf_counter() - t0, 3)}, metrics=metrics, objective="fold_in",
             keep=cfg.store.keep)
-        shutil.rmtree(plan["ingest_dir"], ignore_errors=True)
+        finish_run(plan)
     return {"version": version, "base_version": int(base), "foldin_candidates": int(targets.size), **metrics}

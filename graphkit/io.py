@@ -1,4 +1,11 @@
-"""File helpers: resolving input paths, fingerprints, atomic writes and manifests."""
+"""File helpers: resolving input paths, fingerprints, atomic writes and manifests.
+
+Every file graphkit writes whole goes through :func:`atomic_output`, which has the one durability rule: write
+aside under a hidden name in the same folder (``.NAME.tmp-<random>``), flush and fsync the file, ``os.replace`` it
+onto its name, fsync the folder. A reader sees the old file or the new one, never half of one, and after a crash
+or power cut a present file is a complete one. A failed write leaves only the old file (the aside one is
+removed); an aside file left by a killed process matches ``*.tmp-*``, the pattern the cleanups look for.
+"""
 
 from __future__ import annotations
 
@@ -6,13 +13,16 @@ import glob as _glob
 import hashlib
 import json
 import os
-import tempfile
+import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
 from .errors import EdgeTableError
 
-__all__ = ["resolve_input_files", "fingerprint_files", "digest", "write_json_atomic", "read_json"]
+__all__ = ["resolve_input_files", "fingerprint_files", "digest", "atomic_output", "aside_path", "fsync_file",
+           "fsync_folder", "write_text_atomic", "write_json_atomic", "read_json"]
 
 _GLOB_CHARS = set("*?[")
 _EDGE_BYTES = 1 << 20  # head and tail hashed for the files past the budget (a Parquet footer sits at the end)
@@ -80,18 +90,65 @@ def digest(obj: Any, n: int = 16) -> str:
     return hashlib.sha256(json.dumps(obj, sort_keys=True, default=str).encode()).hexdigest()[:n]
 
 
-def write_json_atomic(path, obj: Any) -> Path:
-    """Write JSON next to ``path`` and rename it into place, so readers never see half a file."""
+def aside_path(path) -> Path:
+    """The name ``path`` is written under before its rename: hidden, in the same folder (so the rename stays on one
+    file system), unique per attempt (two attempts at one file, a retry and a stale worker, never share it)."""
+    path = Path(path)
+    return path.with_name(f".{path.name}.tmp-{uuid.uuid4().hex}")
+
+
+def fsync_file(path) -> None:
+    """Flush ``path``'s data to the disk (whoever wrote it, through whatever handle)."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def fsync_folder(folder) -> None:
+    """Make the renames and new names in ``folder`` durable."""
+    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+@contextmanager
+def atomic_output(path) -> Iterator[Path]:
+    """Write ``path`` whole or not at all: yields the aside path to write (and close) in the ``with`` block; on a
+    normal exit that file is fsynced, renamed onto ``path`` and the folder fsynced; on an error it is removed and
+    ``path`` is left as it was. The folder must exist.
+
+    Example: ``with atomic_output(out) as tmp: pq.write_table(table, tmp)``.
+    """
+    path = Path(path)
+    tmp = aside_path(path)
+    try:
+        yield tmp
+        fsync_file(tmp)
+        os.replace(tmp, path)
+        fsync_folder(path.parent)
+    finally:
+        tmp.unlink(missing_ok=True)  # only there when the block or the fsync failed
+
+
+def write_text_atomic(path, text: str) -> Path:
+    """Write ``text`` (UTF-8) to ``path`` through :func:`atomic_output`, creating the folder if needed."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    with os.fdopen(fd, "w") as fh:
-        json.dump(obj, fh, indent=2, sort_keys=True, default=str)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    with atomic_output(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
     return path
 
 
+def write_json_atomic(path, obj: Any, *, indent: int = 2) -> Path:
+    """Write ``obj`` as JSON (sorted keys; other types as ``str``) to ``path`` through :func:`atomic_output`, so
+    readers never see half a file."""
+    return write_text_atomic(path, json.dumps(obj, indent=indent, sort_keys=True, default=str))
+
+
 def read_json(path) -> Any:
+    """The JSON document at ``path``."""
     return json.loads(Path(path).read_text())

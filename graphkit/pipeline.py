@@ -490,14 +490,20 @@ def _published_ids(cfg: RefreshConfig, plan: dict):
     return node_ids, nodes.column("node_kind").combine_chunks()
 
 
+published_ids = _published_ids  # public: graphkit.foldin publishes the same ids
+
+
 def stage_evaluate(cfg: RefreshConfig, plan: dict, train: dict, eval_train: dict | None = None) -> dict[str, Any]:
     """Quality figures of the run: link prediction (held-out edges), node classification (labels), drift."""
     from .quality import evaluate_vectors
 
     t0 = time.perf_counter()
     node_ids, node_kinds = _published_ids(cfg, plan)
-    eval_vectors = np.load(eval_train["vectors"]) if eval_train else None
-    metrics = evaluate_vectors(cfg, plan, published_vectors=np.load(train["vectors"]), eval_vectors=eval_vectors,
+    # memory-mapped, and one map when the published model is the evaluated one: the measures read row blocks
+    published = np.load(train["vectors"], mmap_mode="r")
+    same = eval_train is not None and Path(eval_train["vectors"]) == Path(train["vectors"])
+    eval_vectors = published if same else np.load(eval_train["vectors"], mmap_mode="r") if eval_train else None
+    metrics = evaluate_vectors(cfg, plan, published_vectors=published, eval_vectors=eval_vectors,
                                node_ids=node_ids, node_kinds=node_kinds)
     return {"metrics": metrics, "seconds": round(time.perf_counter() - t0, 3)}
 
@@ -624,7 +630,7 @@ def _render_report(cfg: RefreshConfig, plan: dict, version: int, graph: dict, fi
     never fails the run)."""
     from datetime import timezone
 
-    from .report import write_report
+    from .report import report_title, write_report
 
     if figures is None:
         return None
@@ -632,14 +638,14 @@ def _render_report(cfg: RefreshConfig, plan: dict, version: int, graph: dict, fi
         this = {"version": version, "status": status, "created_at": datetime.now(timezone.utc).replace(tzinfo=None),
                 "is_current": status == "complete", "n_nodes": graph["n_nodes"],
                 "dim": None if vectors is None else int(vectors.shape[1]), "counts": counts, "metrics": metrics,
-                "timings": timings}
+                "timings": timings, "params": plan["params"]}
         shown = [{**r, "is_current": r["is_current"] and status != "complete"} for r in rows
                  if r["version"] != version] + [this]
         final = Path(plan["store"]) / "reports" / f"version-{version:06d}.html"
         tmp = final.with_name(f".{final.name}.render-{os.getpid()}")
         write_report(tmp, versions=shown, degrees=figures["degrees"], visit_counts=figures["visit_counts"],
                      vectors=vectors, labels=figures["labels"],
-                     title=f"graphkit store {Path(plan['store']).name}: version {version}")
+                     title=report_title(plan["store"], version))
         return {"tmp": tmp}
     except Exception as exc:  # noqa: BLE001 - the report is a convenience; the version is what matters
         _warn_report(exc)
@@ -657,7 +663,9 @@ def _place_report(plan: dict, version: int, report: dict | None) -> None:
 
 
 def _first_labels(cfg: RefreshConfig, plan: dict, n_nodes: int):
-    """One label per node (its first), for colouring the report's projection; None without a labels table."""
+    """One label per node, for colouring the report's projection: of a node's labels, the one of the smallest
+    class (so that a small class drawn over a large one, such as a ring inside circles, shows; ties: the first
+    label); None without a labels table."""
     if not cfg.labels_path:
         return None
     from .quality import load_labels
@@ -667,8 +675,11 @@ def _first_labels(cfg: RefreshConfig, plan: dict, n_nodes: int):
                                  id_column=ev.label_id_column, label_column=ev.label_column, kind=ev.label_kind)
     out = np.full(n_nodes, None, dtype=object)
     keep = idx >= 0
-    for i, lab in zip(idx[keep][::-1], labels[keep][::-1]):  # reversed: the first label per node wins
-        out[i] = lab
+    names, sizes = np.unique(labels[keep].astype(str), return_counts=True)
+    size = dict(zip(names.tolist(), sizes.tolist()))
+    for i, lab in zip(idx[keep], labels[keep]):
+        if out[i] is None or size[str(lab)] < size[str(out[i])]:
+            out[i] = lab
     return out
 
 

@@ -135,8 +135,8 @@ def evaluate_vectors(cfg, plan: dict, *, published_vectors: np.ndarray, eval_vec
     if match is not None and match["new_rows"].size >= 20:
         k = min(10, match["new_rows"].size - 1)
         rows = match["new_rows"]
-        shared = published_vectors if rows.size == published_vectors.shape[0] else published_vectors[rows]
-        overlap = neighbour_overlap(match["old_vectors"], shared, k=k, sample=ev.drift_sample, seed=ev.seed)
+        overlap = neighbour_overlap(match["old_vectors"], published_vectors, k=k, sample=ev.drift_sample,
+                                    seed=ev.seed, cur_rows=None if rows.size == published_vectors.shape[0] else rows)
         metrics["neighbour_overlap"] = round(float(overlap), 6)
         metrics["neighbour_drift"] = round(1.0 - float(overlap), 6)
         metrics["drift_shared_nodes"] = int(match["new_rows"].size)

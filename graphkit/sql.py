@@ -8,7 +8,7 @@ from pathlib import Path
 
 import duckdb
 
-__all__ = ["SQL_DIR", "load_sql", "work_connection", "quote_ident", "sql_literal", "bind"]
+__all__ = ["SQL_DIR", "load_sql", "work_connection", "quote_ident", "sql_literal", "bind", "Identifier", "inline"]
 
 def _sql_dir() -> Path:
     """``sql/`` of the source tree (a checkout, an editable install), or its copy ``graphkit/_sql`` in a wheel."""
@@ -53,7 +53,7 @@ def work_connection(temp_dir: Path | None = None, *, threads: int | None = None,
         Path(temp_dir).mkdir(parents=True, exist_ok=True)
         con.execute("set temp_directory = $d", {"d": str(temp_dir)})
     if threads:
-        con.execute(f"set threads = {int(threads)}")
+        con.execute("set threads = $t", {"t": int(threads)})
     if memory_limit:
         con.execute("set memory_limit = $m", {"m": memory_limit})
     con.execute("set preserve_insertion_order = false")
@@ -63,3 +63,29 @@ def work_connection(temp_dir: Path | None = None, *, threads: int | None = None,
 def sql_literal(text: str) -> str:
     """A SQL string literal (for the few places DuckDB cannot bind a parameter: view bodies, projections)."""
     return "'" + str(text).replace("'", "''") + "'"
+
+
+class Identifier(str):
+    """A name for :func:`inline` to write as a quoted identifier; a dotted name is quoted part by part."""
+
+
+def inline(sql: str, params: dict) -> str:
+    """``sql`` with each ``$name`` written out as the SQL text of ``params[name]``.
+
+    Only for the statements DuckDB cannot prepare: ``create view`` and ``create macro`` store their body as text,
+    so it cannot refer to a bound parameter, and a type such as ``float[$dim]`` is never a parameter. Everything
+    else binds its ``$name`` values (:func:`bind`). Strings become quoted literals, :class:`Identifier` values
+    quoted identifiers, ints their digits; any other type is refused rather than guessed at.
+    """
+    def text(match):
+        value = params[match.group(1)]
+        if isinstance(value, Identifier):
+            return ".".join(quote_ident(part) for part in value.split("."))
+        if isinstance(value, bool) or not isinstance(value, (int, str)):
+            raise TypeError(f"${match.group(1)}: cannot write {type(value).__name__} into SQL text")
+        return str(int(value)) if isinstance(value, int) else sql_literal(value)
+
+    missing = set(_PARAM.findall(sql)) - set(params)
+    if missing:
+        raise KeyError(f"SQL needs parameters {sorted(missing)}")
+    return _PARAM.sub(text, sql)

@@ -111,3 +111,27 @@ def test_version_flag(capsys):
 
     assert main(["--version"]) == 0
     assert capsys.readouterr().out.strip() == f"graphkit {version('graphkit')}"
+
+
+def test_program_exit_waits_for_threads_and_flushes(tmp_path):
+    """``run`` ends the process without the interpreter's teardown: its exit code, its buffered output, a
+    non-daemon thread's work and the exit handlers must all survive that."""
+    import subprocess
+    import sys
+
+    marker = tmp_path / "thread-done"
+    script = (
+        "import atexit, sys, threading, time\n"
+        "from graphkit.cli import run\n"
+        f"def late(): time.sleep(0.3); open({str(marker)!r}, 'w').write('x')\n"
+        "threading.Thread(target=late).start()\n"
+        "atexit.register(lambda: print('exit handler ran'))\n"
+        "sys.stdout.write('buffered ')\n"
+        "run(['versions', '/nonexistent-store-for-test'])\n")
+    proc = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stdout.startswith("buffered ") and "exit handler ran" in proc.stdout
+    assert marker.read_text() == "x"
+    proc = subprocess.run([sys.executable, "-c", "from graphkit.cli import run; run(['--version'])"],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0 and proc.stdout.strip()

@@ -465,6 +465,40 @@ def test_neighbour_overlap_sample_and_bad_input():
         neighbour_overlap(x, y, k=0)
 
 
+def test_neighbour_overlap_rows_of_a_larger_memory_map(tmp_path, monkeypatch):
+    """The shared rows of a larger (memory-mapped) matrix give the same figure as their gathered copy, block by
+    block as in one piece; reference: brute-force cosine neighbours over the gathered copy."""
+    rng = np.random.default_rng(11)
+    prev = rng.normal(size=(400, 8)).astype(np.float32)
+    big = rng.normal(size=(700, 8)).astype(np.float32)
+    rows = np.sort(rng.choice(700, size=400, replace=False))
+    big[rows] = prev + 0.6 * rng.normal(size=prev.shape).astype(np.float32)
+    np.save(tmp_path / "cur.npy", big)
+    mapped = np.load(tmp_path / "cur.npy", mmap_mode="r")
+    k = 5
+
+    def brute(x):
+        u = x / np.linalg.norm(x, axis=1, keepdims=True)
+        sim = u @ u.T
+        np.fill_diagonal(sim, -np.inf)
+        return [set(np.argsort(-row)[:k]) for row in sim]
+
+    expected = np.mean([len(a & b) / k for a, b in zip(brute(prev), brute(big[rows]))])
+    whole = neighbour_overlap(prev, big[rows], k=k, sample=400)
+    monkeypatch.setattr(evaluate, "_BLOCK_ELEMS", 1)  # blocks of k + 1 rows: the running top k merges 67 times
+    blocked = neighbour_overlap(prev, mapped, k=k, sample=400, cur_rows=rows)
+    assert 0.1 < expected < 0.9
+    assert abs(whole - expected) <= 2 / (400 * k) and abs(blocked - expected) <= 2 / (400 * k)
+    bad = big.copy()
+    bad[rows[399], 3] = np.nan  # in the last block only
+    with pytest.raises(ConfigError, match="cur holds NaN"):
+        neighbour_overlap(prev, bad, k=k, cur_rows=rows)
+    with pytest.raises(ConfigError, match="cur_rows must lie in 0..699"):
+        neighbour_overlap(prev, big, k=k, cur_rows=rows + 1000)
+    with pytest.raises(ConfigError, match="same shared nodes"):
+        neighbour_overlap(prev, big, k=k, cur_rows=rows[:10])
+
+
 def test_procrustes_undoes_rotation(monkeypatch):
     rng = np.random.default_rng(10)
     prev = rng.normal(size=(2000, 32)).astype(np.float32)

@@ -40,3 +40,27 @@ def test_output_already_redirected_is_left_alone(tmp_path):
         out, err = proc.communicate(timeout=60)
         assert "out line" in out and "server says" in err
         assert not server_log_path().exists() or "out line" not in server_log_path().read_text()
+
+
+def test_background_start_hands_back_the_watchdog_or_the_error(monkeypatch):
+    import threading
+
+    from graphkit.flows import tempserver
+
+    seen = []
+    monkeypatch.setattr(tempserver, "guard_temporary_server",
+                        lambda: seen.append(threading.current_thread().name) or 4711)
+    assert tempserver.start_temporary_server()() == 4711
+    assert seen == ["graphkit-server-start"]  # it ran in its own thread
+
+    def fails():
+        raise RuntimeError("Timed out while attempting to connect to ephemeral Prefect API server.")
+
+    monkeypatch.setattr(tempserver, "guard_temporary_server", fails)
+    wait = tempserver.start_temporary_server()
+    try:
+        wait()
+    except RuntimeError as exc:
+        assert "Timed out" in str(exc)
+    else:
+        raise AssertionError("the waiter must raise what the start raised")

@@ -118,7 +118,7 @@ def test_blockwise_alignment_equals_scipy_procrustes(tmp_path, monkeypatch):
     from graphkit import store as gs
     from graphkit.evaluate import procrustes_residual
 
-    monkeypatch.setattr(gs, "ALIGN_BLOCK_BYTES", 3 * 8 * 16 * 300)  # blocks of 300 rows
+    monkeypatch.setattr(gs.align, "ALIGN_BLOCK_BYTES", 3 * 8 * 16 * 300)  # blocks of 300 rows
     rng = np.random.default_rng(8)
     x = rng.normal(size=(2000, 16)).astype(np.float32)
     ids = list(range(2000))
@@ -162,7 +162,7 @@ def test_previous_version_is_read_once_per_run(tmp_path, monkeypatch):
     np.testing.assert_array_equal(first["new_rows"], expected_rows)
     np.testing.assert_array_equal(first["old_vectors"], x[299 - expected_rows])
     calls = []
-    monkeypatch.setattr(gs, "_matched_rows", lambda *a: calls.append(a))
+    monkeypatch.setattr(gs.align, "_matched_rows", lambda *a: calls.append(a))
     second = gs.match_current(tmp_path, new_ids, kinds, 8, cache_dir=cache)
     assert calls == [] and second["version"] == 1
     np.testing.assert_array_equal(second["old_vectors"], first["old_vectors"])
@@ -217,8 +217,8 @@ def test_refresh_records_alignment_residual(tmp_path, monkeypatch):
     args = [f'store.path="{tmp_path}"', *FAST_DEMO]
     graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args))
     reads = []
-    join = gs._matched_rows
-    monkeypatch.setattr(gs, "_matched_rows", lambda *a: reads.append(a[0]) or join(*a))
+    join = gs.align._matched_rows
+    monkeypatch.setattr(gs.align, "_matched_rows", lambda *a: reads.append(a[0]) or join(*a))
     # warm start, drift and alignment all use the current version: it is read once
     graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args + ["walks.seed=11",
                                                                               "train.warm_start=true"]))
@@ -277,7 +277,7 @@ def test_sql_views_macros_and_examples(tmp_path):
     got = [r[0] for r in con.sql("select * from nearest_neighbours('acct-7', 5)").fetchall()]
     assert got == want
     text = (ROOT / "sql" / "examples" / "nearest_neighbours.sql").read_text()
-    assert [r[0] for r in con.execute(text, {"node_id": "acct-7"}).fetchall()][:5] == want
+    assert [r[0] for r in con.execute(text, {"node_id": "acct-7", "kind": "", "id_kind": ""}).fetchall()][:5] == want
     pair = con.execute((ROOT / "sql" / "examples" / "pair_similarity.sql").read_text(),
                        {"a": "acct-7", "b": "acct-9"}).fetchall()[0][2]
     assert pair == pytest.approx(float(unit[7] @ unit[9]), abs=1e-5)
@@ -314,6 +314,44 @@ def test_feature_export(tmp_path, tmp_path_factory):
     bad = subprocess.run([sys.executable, "-m", "graphkit.cli", "features", str(tmp_path), "--entities", str(ent),
                           "--on", "custmer", "--out", str(out)], capture_output=True, text=True, cwd=ROOT)
     assert bad.returncode == 2 and "did you mean 'customer'" in bad.stderr
+
+
+
+@pytest.mark.slow
+def test_foldin_publishes_the_pseudonyms_ingest_stored(tmp_path, monkeypatch):
+    """With hash_ids, fold-in takes the ids a refresh publishes (the pseudonyms in nodes.parquet, one id re-hashed
+    to check the key) instead of hashing every id again; a raw id then finds its provisional row through
+    `similar`. Pseudonyms: HMAC-SHA256 (RFC 2104) from the standard library's hmac as the reference."""
+    import hashlib
+    import hmac
+
+    from graphkit import ids as gi
+    from graphkit.foldin import fold_in
+    from graphkit.store import similar_nodes
+
+    key = "a-secret-key-of-the-team-0003"
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", key)
+    data = tmp_path / "data"
+    data.mkdir()
+    pq.write_table(pa.table({"s": ["acct-1", "acct-2", "acct-3"], "t": ["acct-2", "acct-3", "acct-1"]}),
+                   data / "e.parquet")
+    (tmp_path / "c.toml").write_text('[input]\nedges = "data/e.parquet"\nsource = "s"\ntarget = "t"\n'
+                                     'hash_ids = true\n[walks]\nper_node = 5\nlength = 5\n[train]\ndim = 8\n'
+                                     '[store]\npath = "store"\n')
+    graphkit.refresh(load_config(tmp_path / "c.toml"))
+    pq.write_table(pa.table({"s": ["acct-1", "acct-2", "acct-3", "acct-4"],
+                             "t": ["acct-2", "acct-3", "acct-1", "acct-1"]}), data / "e.parquet")
+    hashed = []
+    real = gi.hash_ids
+    monkeypatch.setattr(gi, "hash_ids", lambda ids, k: hashed.append(len(ids)) or real(ids, k))
+    result = fold_in(load_config(tmp_path / "c.toml"))
+    assert result["foldin_nodes"] == 1
+    assert max(hashed) == 4 and hashed.count(4) == 1  # ingest hashes the four ids once; later only a key check
+    pseudonym = hmac.new(key.encode(), b"acct-4", hashlib.sha256).hexdigest()
+    rows = {r["node_id"]: r for r in read_table(tmp_path / "store").to_pylist()}
+    assert rows[pseudonym]["provisional"] and "acct-4" not in rows
+    assert similar_nodes(tmp_path / "store", "acct-4", 1)[0][0] == hmac.new(key.encode(), b"acct-1",
+                                                                            hashlib.sha256).hexdigest()
 
 
 def _reader(store, stop, queue):
@@ -439,8 +477,8 @@ def test_report_reads_only_the_projected_rows(tmp_path, monkeypatch):
     np.savez_compressed(tmp_path / "versions" / f"{version:06d}" / "diagnostics.npz",
                         **gs.diagnostic_arrays(degrees=np.ones(n), labels=labels))
     read_whole = []
-    monkeypatch.setattr(gs, "read_version", lambda *a, **k: read_whole.append(a))
-    monkeypatch.setattr(gs, "read_table", lambda *a, **k: read_whole.append(a))
+    monkeypatch.setattr(gs.catalog, "read_version", lambda *a, **k: read_whole.append(a))
+    monkeypatch.setattr(gs.catalog, "read_table", lambda *a, **k: read_whole.append(a))
     assert main(["report", str(tmp_path), "--out", str(tmp_path / "r.html")]) == 0
     assert read_whole == []
     html = (tmp_path / "r.html").read_text()

@@ -732,3 +732,28 @@ def test_count_visits_bad_input():
         count_visits(np.array([0, 1]), 5)
     with pytest.raises(ConfigError, match=r"dtype float64"):
         count_visits(np.zeros((2, 2)), 5)
+
+
+def test_one_prefetch_hint_for_both_kernels():
+    # graphkit.prefetch serves the walks (integer index) and training (row, column); a cache hint never changes
+    # a result, and an index that does not match the array's dimensions is refused when the kernel compiles.
+    import numba
+
+    from graphkit.prefetch import prefetch
+
+    @numba.njit
+    def touch(a, m, i, r, c):
+        prefetch(a, i)
+        prefetch(m, (r, c))
+        return a[i] + m[r, c]
+
+    a, m = np.arange(6.0), np.arange(12, dtype=np.float32).reshape(3, 4)
+    assert touch(a, m, 4, 2, 1) == 4.0 + 9.0
+    assert gw._prefetch is prefetch
+
+    @numba.njit
+    def wrong(m):
+        prefetch(m, 1)
+
+    with pytest.raises(numba.core.errors.TypingError):
+        wrong(m)

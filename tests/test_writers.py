@@ -20,7 +20,8 @@ import pytest
 
 import graphkit
 import graphkit.pipeline as pipeline
-import graphkit.store as store_mod
+import graphkit.store.catalog as catalog_mod
+import graphkit.store.lock as store_lock_mod
 from graphkit.cli import main
 from graphkit.config import load_config
 from graphkit.errors import StoreError
@@ -380,10 +381,11 @@ def test_kill_after_each_rename_of_the_publish(project, fault):
 
 def test_every_rename_of_the_publish_is_followed_by_a_folder_fsync(tmp_path, monkeypatch):
     events = []
-    real_replace, real_fsync_dir = os.replace, store_mod._fsync_dir
-    monkeypatch.setattr(store_mod.os, "replace", lambda a, b: (events.append(("rename", Path(b))),
-                                                               real_replace(a, b))[1])
-    monkeypatch.setattr(store_mod, "_fsync_dir", lambda d: (events.append(("fsync", Path(d))), real_fsync_dir(d))[1])
+    real_replace, real_fsync_dir = os.replace, store_lock_mod.fsync_dir
+    monkeypatch.setattr(store_lock_mod.os, "replace", lambda a, b: (events.append(("rename", Path(b))),
+                                                                    real_replace(a, b))[1])
+    monkeypatch.setattr(store_lock_mod, "fsync_dir", lambda d: (events.append(("fsync", Path(d))),
+                                                                real_fsync_dir(d))[1])
     _publish(tmp_path)
     _publish(tmp_path, value=2.0, keep=1)
     promote_version(tmp_path, 2)
@@ -396,14 +398,14 @@ def test_every_rename_of_the_publish_is_followed_by_a_folder_fsync(tmp_path, mon
 def test_diagnostics_are_in_the_version_before_it_becomes_visible(project, monkeypatch):
     """At the moment the catalog switch makes the version visible, its folder already holds everything."""
     seen = {}
-    real = store_mod._update_catalog
+    real = catalog_mod._update_catalog
 
     def spy(store, apply):
         for folder in (Path(store) / "versions").glob("[0-9]*"):
             seen[folder.name] = sorted(p.name for p in folder.iterdir())
         return real(store, apply)
 
-    monkeypatch.setattr(store_mod, "_update_catalog", spy)
+    monkeypatch.setattr(catalog_mod, "_update_catalog", spy)
     graphkit.refresh(load_config(project / "ok.toml"))
     assert seen == {"000001": ["diagnostics.npz", "embeddings.duckdb", "embeddings.parquet"]}
     files = sorted(p.name for p in (project / "store" / "versions" / "000001").iterdir())

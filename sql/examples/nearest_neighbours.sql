@@ -1,19 +1,17 @@
 -- nearest_neighbours: the 10 nodes whose current vectors are closest (cosine) to one node's.
--- grain: one row per neighbour.
--- inputs: view embeddings (see graphkit.connect).
--- params: $node_id (text; ids are compared as text so integer and string ids both work).
--- From Python: graphkit.connect(store).execute(open(this_file).read(), {"node_id": "acct-10042"}).fetchall()
--- The catalog's macro does the same: select * from nearest_neighbours('acct-10042', 10)
-with query as (
-    select vector from embeddings where node_id::varchar = $node_id limit 1
-),
-
-final as (
-    select e.node_id, e.node_kind, array_cosine_similarity(e.vector, q.vector) as similarity
-    from embeddings as e, query as q
-    where e.node_id::varchar <> $node_id
-    order by similarity desc
-    limit 10
+-- grain: one row per neighbour, most similar first (ties by node_id, then node_kind).
+-- inputs: view embeddings (see graphkit.connect) and the catalog's nearest_neighbours macro (sql/macros.sql),
+--         the same query `graphkit similar` runs.
+-- params: $node_id (text; ids are compared as text so integer and string ids both work); $kind (text: only
+--         neighbours of this kind, '' for every kind); $id_kind (text: the query node's kind when its id exists
+--         under several kinds, '' otherwise).
+-- From the shell: graphkit sql STORE --file sql/examples/nearest_neighbours.sql --param node_id=acct-10042
+--                 --param kind=merchant --param id_kind=
+-- From Python: graphkit.connect(store).execute(open(this_file).read(),
+--                                              {"node_id": "acct-10042", "kind": "", "id_kind": ""}).fetchall()
+with final as (
+    select node_id, node_kind, similarity
+    from nearest_neighbours($node_id, 10, kind := nullif($kind, ''), id_kind := nullif($id_kind, ''))
 )
 
 select * from final

@@ -364,7 +364,9 @@ def extrapolate(results: list[dict], n_nodes: int, degree: int) -> str:
     overhead = float(np.mean([r["wall"] - sum(r["timings"].get(s, 0.0) for s in STAGES) for r in results]))
     total += overhead
     lines += ["", f"Plus {overhead:.0f} s outside the stages (imports, temporary Prefect server, task overhead): "
-                  f"{total / 60:.1f} min in all; peak memory {_mb(max(peaks, default=0))} MiB (process tree)."]
+                  f"{total / 60:.1f} min in all; " +
+              (f"peak memory {_mb(max(peaks))} MiB (process tree)." if peaks else
+               "no memory trend (one size measured: run two or more sizes for it).")]
     return "\n".join(lines)
 
 
