@@ -182,7 +182,8 @@ except (OSError, ValueError):
     data = {}
 data[which] = round(max(seconds, 0.0), 3)
 tmp = path + ".tmp-" + str(os.getpid())
-with open(tmp, "w") as f:
+with os.fdopen(os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644), "w") as f:
+    os.fchmod(f.fileno(), 0o644)  # like the rest of the store, whatever umask the run left
     json.dump(data, f)
 os.replace(tmp, path)
 """
@@ -196,6 +197,7 @@ def _write_tail(path: str, which: str, seconds: float) -> None:
         data = {}
     data[which] = round(max(seconds, 0.0), 3)
     write_json_atomic(p, data)
+    os.chmod(p, 0o644)  # written after the run's umask is restored: no group/world write bits, like the store
 
 
 #: The process's run clock (see :class:`RunClock`).

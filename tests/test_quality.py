@@ -151,8 +151,8 @@ def test_report_timing_chart_names_stages_and_fixed_costs(tmp_path):
                        title="t")
     html = out.read_text()
     # by hand: 33.5 s in all, 11.5 s in the stages (ingest, walks, train, publish), 22 s of fixed costs
-    assert "Version 1: 33.5 s recorded, 11.5 s in the stages and 22 s of fixed costs" in html
-    assert "of which 7 s after the publish, estimated" in html
+    assert "Version 1: 33.5 s recorded, 11.5 s in the stages and 22.0 s of fixed costs" in html
+    assert "of which 7.0 s after the publish, estimated" in html
 
 
 def test_versions_command_shows_stages_and_fixed_costs(tmp_path, capsys):

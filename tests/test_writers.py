@@ -335,7 +335,10 @@ def test_refresh_publish_task_retry_after_the_switch_publishes_once(project, mon
         return attempts[-1]
 
     monkeypatch.setenv("GRAPHKIT_TEST_FAULTS", "1")
-    monkeypatch.setattr(pipeline, "stage_publish", publish_with_retry)
+    import dataclasses
+
+    monkeypatch.setattr(pipeline, "STAGES", tuple(dataclasses.replace(s, function=publish_with_retry)
+                                                  if s.name == "publish" else s for s in pipeline.STAGES))
     (project / "seed5.toml").write_text(CONFIG.format(seed=5))
     assert graphkit.refresh(load_config(project / "seed5.toml")) == 2
     assert attempts == ["failed", 2]
