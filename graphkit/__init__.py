@@ -1,6 +1,6 @@
 """graphkit: nightly node embeddings for large relationship graphs.
 
-Notebook entry points: :class:`SparseGraph`, :func:`random_walks`, :func:`train_vectors`, :func:`connect`.
+Notebook entry points: :class:`AdjacencyArrays`, :func:`random_walks`, :func:`train_vectors`, :func:`connect`.
 Heavy modules (numba kernels, DuckDB) load on first use.
 """
 
@@ -9,9 +9,9 @@ from __future__ import annotations
 from importlib import import_module
 
 from .errors import ConfigError, EdgeTableError, GraphDataWarning, InputError, StoreError
-from .graph import SparseGraph
+from .graph import AdjacencyArrays
 
-__all__ = ["SparseGraph", "random_walks", "train_vectors", "connect", "load_config", "refresh",
+__all__ = ["AdjacencyArrays", "random_walks", "train_vectors", "connect", "load_config", "refresh",
            "ConfigError", "EdgeTableError", "GraphDataWarning", "InputError", "StoreError"]
 
 _LAZY = {"random_walks": ".walks", "train_vectors": ".train", "connect": ".store", "load_config": ".config",

@@ -48,7 +48,7 @@ from . import progress
 from .checks import check_int as _check_int
 from .errors import ConfigError
 from .faults import fault_point
-from .graph import SparseGraph
+from .graph import AdjacencyArrays
 from .io import atomic_output, write_text_atomic
 from .walks import (alias_table, check_walk_options, check_walk_params, count_restarts, prepare_walker, run_walks,
                     walk_diagnostics)
@@ -109,10 +109,10 @@ def _graph_fingerprint(graph_dir: Path) -> dict:
     return files
 
 
-def _open_graph(graph_dir: Path) -> SparseGraph:
+def _open_graph(graph_dir: Path) -> AdjacencyArrays:
     if not (graph_dir / "graph.json").is_file():
         raise ConfigError(f"graph_dir {str(graph_dir)!r} holds no graph (graph.json is missing)")
-    return SparseGraph.load(graph_dir, mmap=True)
+    return AdjacencyArrays.load(graph_dir, mmap=True)
 
 
 @contextmanager
@@ -189,7 +189,7 @@ def write_shard(graph_dir: str, corpus_dir: str, index: int, start: int, stop: i
     or written per shard: when the pool ``visits_pool`` of this process is there, each row group's visits are added
     in place into one of its arrays (``"counted": True`` in the result).
     """
-    graph = SparseGraph.load(graph_dir, mmap=True)
+    graph = AdjacencyArrays.load(graph_dir, mmap=True)
     alias = np.load(alias_path, mmap_mode="r") if alias_path is not None else None
     # check=False: the driver checked the graph files once (sorted rows for second-order walks)
     walker = prepare_walker(graph, weighted=weighted, p=p, q=q, dead_end=dead_end, alias=alias, check=False)
@@ -257,8 +257,8 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
                       n_workers=None, weighted=True, p=1.0, q=1.0, dead_end="stop") -> dict:
     """Write the walk corpus of the graph in ``graph_dir`` to ``corpus_dir`` as Parquet shards, with Dask.
 
-    The corpus equals ``random_walks(SparseGraph.load(graph_dir), per_node, length, seed, weighted=weighted, p=p, q=q,
-    dead_end=dead_end)`` read shard after shard. It is never gathered: every task memory-maps the graph, writes its
+    The corpus equals ``random_walks(AdjacencyArrays.load(graph_dir), per_node, length, seed, weighted=weighted,
+    p=p, q=q, dead_end=dead_end)`` read shard after shard. It is never gathered: every task memory-maps the graph, writes its
     own shard and returns a small dict, so memory stays bounded by one row group per worker thread (plus the
     memory-mapped graph, and the alias table for weighted walks). Rerunning with the same arguments skips the shards
     already complete; ``manifest.json`` is written only when all are.
@@ -266,7 +266,7 @@ def write_walk_corpus(graph_dir, corpus_dir, *, per_node, length, seed, n_shards
     Parameters
     ----------
     graph_dir : str or Path
-        A folder written by :meth:`SparseGraph.save`; workers must see it under the same path.
+        A folder written by :meth:`AdjacencyArrays.save`; workers must see it under the same path.
     corpus_dir : str or Path
         Created if missing. If it holds a corpus planned with other parameters or another graph, nothing is touched
         and ``ConfigError`` is raised. Workers must see it under the same path.
@@ -380,7 +380,7 @@ def _settle_plan(corpus_dir: Path, plan: dict, threads: int) -> dict:
     return plan
 
 
-def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
+def _ensure_alias(graph: AdjacencyArrays, corpus_dir: Path) -> Path:
     """The alias table as ``corpus_dir/alias.npy``, built straight into a memory-mapped temporary file and renamed
     into place (so a present file is a complete one); reused by a rerun."""
     final = corpus_dir / ALIAS
@@ -397,7 +397,7 @@ def _ensure_alias(graph: SparseGraph, corpus_dir: Path) -> Path:
     return final
 
 
-def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, plan: dict, *,
+def _run_shards(client, graph: AdjacencyArrays, graph_dir: Path, corpus_dir: Path, plan: dict, *,
                 visits_pool: str | None = None) -> dict:
     import distributed
 
@@ -457,7 +457,7 @@ def _run_shards(client, graph: SparseGraph, graph_dir: Path, corpus_dir: Path, p
     return manifest
 
 
-def _diagnostics(graph: SparseGraph, visits: np.ndarray, shards: list[dict], per_node: int) -> dict:
+def _diagnostics(graph: AdjacencyArrays, visits: np.ndarray, shards: list[dict], per_node: int) -> dict:
     out_deg = graph.degrees()
     in_deg = np.bincount(np.asarray(graph.indices), minlength=graph.n_nodes) if graph.directed else None
     return walk_diagnostics(visits, out_deg, per_node=per_node, in_degrees=in_deg,

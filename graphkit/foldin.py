@@ -10,17 +10,17 @@ import pyarrow as pa
 
 from .config import RefreshConfig
 from .errors import StoreError
-from .graph import SparseGraph
+from .graph import AdjacencyArrays
 
 __all__ = ["fold_in", "neighbour_mean_vectors"]
 
 
-def neighbour_mean_vectors(graph: SparseGraph, known: np.ndarray, vectors: np.ndarray, targets: np.ndarray):
+def neighbour_mean_vectors(graph: AdjacencyArrays, known: np.ndarray, vectors: np.ndarray, targets: np.ndarray):
     """Weighted mean of the known neighbours' vectors for each target node.
 
     Parameters
     ----------
-    graph : SparseGraph
+    graph : AdjacencyArrays
     known : ndarray of int64, shape (n_nodes,)
         Row of each node in ``vectors``, or -1 when the node has no vector.
     vectors : ndarray of float32, shape (n_known, dim)
@@ -78,7 +78,7 @@ def fold_in(cfg: RefreshConfig) -> dict[str, Any]:
         # the refresh's own stages: the same ingest folder (reused when a refresh of this input left it), the
         # graph's checks, and the ids as a refresh publishes them (with hash_ids, the pseudonyms ingest stored)
         ingest = stage_ingest(cfg, plan)
-        graph = SparseGraph.load(stage_graph(cfg, plan)["graph_dir"])
+        graph = AdjacencyArrays.load(stage_graph(cfg, plan)["graph_dir"])
         ids, kinds = published_ids(cfg, plan)
         current = read_table(cfg.store_path, base)
         dim = current.schema.field("vector").type.list_size

@@ -11,13 +11,13 @@ import numpy as np
 
 from .errors import ConfigError
 
-__all__ = ["SparseGraph"]
+__all__ = ["AdjacencyArrays"]
 
 _META = "graph.json"
 
 
 @dataclass(frozen=True, eq=False)
-class SparseGraph:
+class AdjacencyArrays:
     """A graph over dense node indices ``0..n_nodes-1`` in compressed sparse row form.
 
     The out-neighbours of node ``v`` are ``indices[indptr[v]:indptr[v + 1]]``, sorted ascending, with the matching
@@ -39,7 +39,7 @@ class SparseGraph:
 
     # ------------------------------------------------------------------ construction
     @classmethod
-    def from_arrays(cls, indptr, indices, weights=None, *, directed=False, validate=True) -> "SparseGraph":
+    def from_arrays(cls, indptr, indices, weights=None, *, directed=False, validate=True) -> "AdjacencyArrays":
         """Wrap existing CSR arrays, fixing dtypes (a copy only when the dtype or layout differs).
 
         Parameters
@@ -61,7 +61,7 @@ class SparseGraph:
         return graph
 
     @classmethod
-    def from_edges(cls, src, dst, weights=None, *, n_nodes=None, directed=False) -> "SparseGraph":
+    def from_edges(cls, src, dst, weights=None, *, n_nodes=None, directed=False) -> "AdjacencyArrays":
         """Build a CSR graph from an edge list over dense indices.
 
         Duplicate edges are merged (weights summed); an undirected graph gets both directions of every edge.
@@ -164,7 +164,7 @@ class SparseGraph:
         return folder
 
     @classmethod
-    def load(cls, folder, *, mmap=True) -> "SparseGraph":
+    def load(cls, folder, *, mmap=True) -> "AdjacencyArrays":
         """Open a graph written by :meth:`save`, memory-mapped read-only by default."""
         folder = Path(folder)
         meta = json.loads((folder / _META).read_text())

@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 
 from .errors import EdgeTableError, GraphDataWarning
 from .faults import fault_point
-from .graph import SparseGraph
+from .graph import AdjacencyArrays
 from .io import digest, fingerprint_files, resolve_input_files, write_json_atomic
 from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
 
@@ -395,7 +395,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     ----------
     tables : sequence of EdgeTable (or mappings with its fields)
     out_dir : path
-        Receives ``graph/`` (CSR ``.npy`` arrays, see :meth:`SparseGraph.save`), ``nodes.parquet``
+        Receives ``graph/`` (CSR ``.npy`` arrays, see :meth:`AdjacencyArrays.save`), ``nodes.parquet``
         (node_idx int32, node_kind, node_id in the input's type) and ``ingest.json`` (counts, fingerprint).
     directed : bool, default False
     drop_null_ids : bool, default False
@@ -460,7 +460,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         raise EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})") from None
     finally:
         con.close()
-    graph = SparseGraph.from_arrays(indptr, indices, wts, directed=directed)
+    graph = AdjacencyArrays.from_arrays(indptr, indices, wts, directed=directed)
     graph.save(out_dir / "graph")
     n_merged = n_kept - n_distinct
     all_files = [f for fs in info["files"] for f in fs]

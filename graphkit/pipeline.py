@@ -26,7 +26,7 @@ import pyarrow.parquet as pq
 from .config import RefreshConfig
 from .errors import GateFailure
 from .faults import fault_point
-from .graph import SparseGraph
+from .graph import AdjacencyArrays
 from .ingest import ingest_tables, validate_edge_tables
 from .ids import salt_from_env
 from .io import digest, fingerprint_files, read_json, write_json_atomic
@@ -340,7 +340,7 @@ def stage_graph(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     """Open the memory-mapped CSR written by ingest and check its invariants."""
     t0 = time.perf_counter()
     folder = Path(plan["ingest_dir"]) / "graph"
-    graph = SparseGraph.load(folder)
+    graph = AdjacencyArrays.load(folder)
     graph.validate()
     deg = graph.degrees()
     return {"graph_dir": str(folder), "n_nodes": graph.n_nodes, "adjacency_entries": graph.n_edges,
@@ -611,7 +611,7 @@ def _report_figures(cfg: RefreshConfig, plan: dict) -> dict | None:
     """Per-node degree, walk visits and first label of the run, for the version's diagnostics and the report;
     None (with a warning) when they cannot be read: they are a convenience, the version is what matters."""
     try:
-        degrees = SparseGraph.load(Path(plan["ingest_dir"]) / "graph").degrees()
+        degrees = AdjacencyArrays.load(Path(plan["ingest_dir"]) / "graph").degrees()
         visits = None
         counts_path = Path(plan["walks_dir"])
         if (counts_path / "manifest.json").exists():

@@ -12,7 +12,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import EdgeTableError
-from .graph import SparseGraph
+from .graph import AdjacencyArrays
 from .io import read_json, write_json_atomic
 
 __all__ = ["make_holdout", "load_labels", "evaluate_vectors", "failed_gates"]
@@ -27,7 +27,7 @@ def make_holdout(graph_dir, out_dir, *, fraction: float, seed: int, max_edges: i
     if (out / "holdout.json").exists():
         return {**read_json(out / "holdout.json"), "skipped": True}
     t0 = time.perf_counter()
-    graph = SparseGraph.load(graph_dir, mmap=False)
+    graph = AdjacencyArrays.load(graph_dir, mmap=False)
     result = holdout_edges(graph, fraction, seed=seed, max_edges=max_edges)
     result.train_graph.save(out / "graph")
     np.save(out / "positives.npy", result.positives)

@@ -13,7 +13,7 @@ os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("DO_NOT_TRACK", "1")
 os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
-from graphkit.graph import SparseGraph  # noqa: E402
+from graphkit.graph import AdjacencyArrays  # noqa: E402
 
 
 #: Overrides that make the demo refresh a quick fixture: fewer, shorter walks, small vectors, no evaluation.
@@ -21,12 +21,13 @@ FAST_DEMO = ["walks.per_node=2", "walks.length=20", "train.dim=16", "evaluate.li
              "gates.min_link_auc=none", "gates.min_micro_f1=none"]
 
 
-def graph_from_nx(g: nx.Graph) -> SparseGraph:
+def graph_from_nx(g: nx.Graph) -> AdjacencyArrays:
     """CSR graph over the integer nodes 0..n-1 of a networkx graph (weights from the 'weight' attribute if any)."""
     edges = np.array(list(g.edges()), dtype=np.int64).reshape(-1, 2)
     weighted = any("weight" in d for _, _, d in g.edges(data=True))
     w = np.array([d.get("weight", 1.0) for _, _, d in g.edges(data=True)]) if weighted else None
-    return SparseGraph.from_edges(edges[:, 0], edges[:, 1], w, n_nodes=g.number_of_nodes(), directed=g.is_directed())
+    return AdjacencyArrays.from_edges(edges[:, 0], edges[:, 1], w, n_nodes=g.number_of_nodes(),
+                                      directed=g.is_directed())
 
 
 @pytest.fixture
@@ -52,18 +53,18 @@ def two_cliques():
 @pytest.fixture
 def graph_with_isolated():
     """A triangle 0-1-2 plus node 3 with no edges."""
-    return SparseGraph.from_edges([0, 1, 2], [1, 2, 0], n_nodes=4)
+    return AdjacencyArrays.from_edges([0, 1, 2], [1, 2, 0], n_nodes=4)
 
 
 @pytest.fixture
 def small_directed():
     """0->1, 1->2, 2->0, 2->3; node 3 has no out-edges."""
-    return SparseGraph.from_edges([0, 1, 2, 2], [1, 2, 0, 3], n_nodes=4, directed=True)
+    return AdjacencyArrays.from_edges([0, 1, 2, 2], [1, 2, 0, 3], n_nodes=4, directed=True)
 
 
 def planted_partition(n_blocks=50, block_size=200, in_deg=6.0, out_deg=6.0, seed=7):
     """Planted-partition graph (networkx.planted_partition_graph) with about ``in_deg`` expected edges per node
-    inside its block and ``out_deg`` outside; returns (SparseGraph, labels)."""
+    inside its block and ``out_deg`` outside; returns (AdjacencyArrays, labels)."""
     n = n_blocks * block_size
     p_in = in_deg / (block_size - 1)
     p_out = out_deg / (n - block_size)

@@ -16,7 +16,7 @@ from conftest import graph_from_nx
 from graphkit import corpus as gc
 from graphkit.corpus import WalkCorpus, accumulate_visits, count_corpus_visits, plan_shards, write_walk_corpus
 from graphkit.errors import ConfigError
-from graphkit.graph import SparseGraph
+from graphkit.graph import AdjacencyArrays
 from graphkit.walks import count_restarts, count_visits, random_walks, walk_diagnostics
 
 PER_NODE, LENGTH, SEED = 4, 7, 3
@@ -33,7 +33,7 @@ def graph_dir(tmp_path_factory):
 @pytest.fixture(scope="module")
 def reference(graph_dir):
     """The same corpus computed in one process, in memory (read-only: shared by the module's tests)."""
-    walks = random_walks(SparseGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=1)
+    walks = random_walks(AdjacencyArrays.load(graph_dir), PER_NODE, LENGTH, SEED, threads=1)
     walks.setflags(write=False)
     return walks
 
@@ -71,7 +71,8 @@ def test_corpus_equals_random_walks(graph_dir, reference, tmp_path, n_shards, n_
     manifest = write_walk_corpus(graph_dir, tmp_path / "c", per_node=PER_NODE, length=LENGTH, seed=SEED,
                                  n_shards=n_shards, n_workers=n_workers)
     assert read_all(tmp_path / "c").tobytes() == reference.tobytes()
-    assert reference.tobytes() == random_walks(SparseGraph.load(graph_dir), PER_NODE, LENGTH, SEED, threads=2).tobytes()
+    walks = random_walks(AdjacencyArrays.load(graph_dir), PER_NODE, LENGTH, SEED, threads=2)
+    assert reference.tobytes() == walks.tobytes()
     n_tokens = int((reference >= 0).sum())
     assert n_tokens < reference.size  # the sinks produce padding, which is not counted
     assert {k: manifest[k] for k in ("n_nodes", "n_walks", "length", "n_tokens", "per_node", "seed")} == {
@@ -95,7 +96,7 @@ def test_corpus_equals_random_walks(graph_dir, reference, tmp_path, n_shards, n_
     (dict(dead_end="restart"), 7, 1),
 ], ids=str)
 def test_weighted_second_order_corpus_equals_random_walks(weighted_dir, tmp_path, opts, n_shards, n_workers):
-    graph = SparseGraph.load(weighted_dir)
+    graph = AdjacencyArrays.load(weighted_dir)
     reference = random_walks(graph, PER_NODE, LENGTH, SEED, threads=2, **opts)
     out = tmp_path / "c"
     manifest = write_walk_corpus(weighted_dir, out, per_node=PER_NODE, length=LENGTH, seed=SEED, n_shards=n_shards,
@@ -143,7 +144,7 @@ def test_weighted_rerun_rewrites_only_incomplete_shards(weighted_dir, tmp_path):
     assert second == first  # shard 1's counts and restarts come back, the others' are read from their footers
     assert {n for n in after if after.get(n) != before.get(n)} == {"shard-00001.parquet", "shard-00003.parquet"}
     assert not list(out.glob("*.tmp-*")) and not (out / gc.ALIAS).exists()
-    assert read_all(out).tobytes() == random_walks(SparseGraph.load(weighted_dir), PER_NODE, LENGTH, SEED, p=0.5,
+    assert read_all(out).tobytes() == random_walks(AdjacencyArrays.load(weighted_dir), PER_NODE, LENGTH, SEED, p=0.5,
                                                    q=2.0, dead_end="restart").tobytes()
 
 
@@ -162,7 +163,7 @@ def test_corpus_of_other_walk_options_is_left_alone(weighted_dir, tmp_path, chan
 
 
 def test_reweighted_graph_is_refused(weighted_dir, tmp_path):
-    g = SparseGraph.load(weighted_dir, mmap=False)
+    g = AdjacencyArrays.load(weighted_dir, mmap=False)
     g.save(tmp_path / "g")
     write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=1, length=5, seed=0)
     np.save(tmp_path / "g" / "weights.npy", g.weights[::-1].copy())  # same edges, other weights
@@ -389,7 +390,7 @@ def test_default_shard_plan():
 
 
 def test_empty_graph_gives_empty_corpus(tmp_path):
-    SparseGraph.from_edges([], [], n_nodes=0).save(tmp_path / "g")
+    AdjacencyArrays.from_edges([], [], n_nodes=0).save(tmp_path / "g")
     manifest = write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=2, length=5, seed=0)
     assert (manifest["n_walks"], manifest["n_tokens"]) == (0, 0)
     assert list(WalkCorpus(tmp_path / "c")) == []
@@ -417,7 +418,7 @@ def test_bad_parameters_raise(graph_dir, tmp_path, kwargs, match):
 
 
 def test_unsorted_graph_is_refused_for_second_order_walks(tmp_path):
-    SparseGraph.from_arrays([0, 2, 3, 4], [2, 1, 0, 0]).save(tmp_path / "g")
+    AdjacencyArrays.from_arrays([0, 2, 3, 4], [2, 1, 0, 0]).save(tmp_path / "g")
     with pytest.raises(ConfigError, match=r"sorted ascending; node 0 is not"):
         write_walk_corpus(tmp_path / "g", tmp_path / "c", per_node=1, length=4, seed=0, p=2.0)
     assert not (tmp_path / "c").exists()

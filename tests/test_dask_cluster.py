@@ -18,7 +18,7 @@ distributed = pytest.importorskip("distributed")
 from graphkit import pipeline  # noqa: E402
 from graphkit.config import load_config  # noqa: E402
 from graphkit.corpus import WalkCorpus, write_walk_corpus  # noqa: E402
-from graphkit.graph import SparseGraph  # noqa: E402
+from graphkit.graph import AdjacencyArrays  # noqa: E402
 from graphkit.walks import random_walks  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -86,7 +86,7 @@ def test_process_cluster_corpus_is_byte_identical_to_single_process(cluster, dem
     cfg, plan, graph_dir = demo_graph
     w = cfg.walks
     sizes.ran_on.clear()
-    graph = SparseGraph.load(graph_dir)
+    graph = AdjacencyArrays.load(graph_dir)
     # the single-process reference: the whole corpus in memory, one numba call
     expected = random_walks(graph, w.per_node, w.length, w.seed, threads=1)
 
@@ -149,5 +149,5 @@ def test_walks_stage_through_dask_address_config(cluster, demo_graph, tmp_path):
     assert len(lc_sizes.ran_on) == len(result["shards"]) >= 1  # the shards ran on the process cluster
     assert set(lc_sizes.ran_on.values()) <= set(lc.scheduler.workers)
     w = cfg.walks
-    expected = random_walks(SparseGraph.load(graph_dir), w.per_node, w.length, w.seed, threads=1)
+    expected = random_walks(AdjacencyArrays.load(graph_dir), w.per_node, w.length, w.seed, threads=1)
     assert np.array_equal(_read(tmp_path / "walks"), expected)

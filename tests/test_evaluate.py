@@ -12,7 +12,7 @@ from scipy.stats import ortho_group
 from sklearn.neighbors import NearestNeighbors
 
 import graphkit
-from graphkit import SparseGraph, evaluate
+from graphkit import AdjacencyArrays, evaluate
 from graphkit.errors import ConfigError, GraphDataWarning
 from graphkit.evaluate import (auc_delong, auc_se_hanley_mcneil, holdout_edges, link_prediction, neighbour_overlap,
                                node_classification, procrustes_residual, procrustes_rotation)
@@ -179,9 +179,9 @@ def test_holdout_bad_input(path_graph):
         holdout_edges(path_graph, 1.5)
     with pytest.raises(ConfigError, match=r"seed must be >= 0, got -1"):
         holdout_edges(path_graph, 0.1, seed=-1)
-    with pytest.raises(ConfigError, match="graph must be a SparseGraph, got list"):
+    with pytest.raises(ConfigError, match="graph must be an AdjacencyArrays, got list"):
         holdout_edges([[0, 1]], 0.1)
-    unsorted = SparseGraph.from_arrays([0, 2, 3, 4], [2, 1, 0, 0])
+    unsorted = AdjacencyArrays.from_arrays([0, 2, 3, 4], [2, 1, 0, 0])
     with pytest.raises(ConfigError, match="sorted ascending"):
         holdout_edges(unsorted, 0.5)
 

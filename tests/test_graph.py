@@ -1,10 +1,10 @@
-"""SparseGraph: construction, invariants and files, checked against scipy.sparse (a general-purpose reference)."""
+"""AdjacencyArrays: construction, invariants and files, checked against scipy.sparse (a general-purpose reference)."""
 
 import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from graphkit import SparseGraph
+from graphkit import AdjacencyArrays
 from graphkit.errors import ConfigError
 
 
@@ -26,7 +26,7 @@ def test_from_edges_matches_scipy(directed):
     keep = src != dst
     src, dst = src[keep], dst[keep]
     w = rng.uniform(0.1, 3.0, src.size)
-    g = SparseGraph.from_edges(src, dst, w, n_nodes=n, directed=directed)
+    g = AdjacencyArrays.from_edges(src, dst, w, n_nodes=n, directed=directed)
     ref = _scipy_adjacency(src, dst, w, n, directed)
     np.testing.assert_array_equal(g.indptr, ref.indptr)
     np.testing.assert_array_equal(g.indices, ref.indices)
@@ -36,7 +36,7 @@ def test_from_edges_matches_scipy(directed):
 
 def test_save_load_memory_maps(tmp_path, two_cliques):
     two_cliques.save(tmp_path / "g")
-    g = SparseGraph.load(tmp_path / "g")
+    g = AdjacencyArrays.load(tmp_path / "g")
     assert isinstance(g.indices, np.memmap)
     np.testing.assert_array_equal(g.indptr, two_cliques.indptr)
     np.testing.assert_array_equal(g.indices, two_cliques.indices)
@@ -50,9 +50,9 @@ def test_save_load_memory_maps(tmp_path, two_cliques):
 ])
 def test_validate_rejects_broken_arrays(indptr, indices, match):
     with pytest.raises(ConfigError, match=match):
-        SparseGraph.from_arrays(indptr, indices)
+        AdjacencyArrays.from_arrays(indptr, indices)
 
 
 def test_validate_rejects_bad_weights():
     with pytest.raises(ConfigError, match="weights must be finite and > 0"):
-        SparseGraph.from_arrays([0, 1, 2], [1, 0], [1.0, -1.0])
+        AdjacencyArrays.from_arrays([0, 1, 2], [1, 0], [1.0, -1.0])

@@ -9,7 +9,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from graphkit.errors import EdgeTableError, GraphDataWarning
-from graphkit.graph import SparseGraph
+from graphkit.graph import AdjacencyArrays
 from graphkit.ingest import ingest_edges
 
 
@@ -22,7 +22,7 @@ def _ingest(tmp_path, edges, **kw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", GraphDataWarning)
         info = ingest_edges(edges, tmp_path / "out", drop_null_ids=True, **kw)
-    graph = SparseGraph.load(tmp_path / "out" / "graph")
+    graph = AdjacencyArrays.load(tmp_path / "out" / "graph")
     ids = pq.read_table(tmp_path / "out" / "nodes.parquet").column("node_id").to_pylist()
     return info, graph, ids
 
@@ -144,7 +144,7 @@ def test_adjacency_matches_scipy_csr_when_duckdb_runs_in_parallel(tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", GraphDataWarning)
         ingest_edges(path, tmp_path / "out", source="s", target="d", weight="w", threads=2)
-    graph = SparseGraph.load(tmp_path / "out" / "graph")
+    graph = AdjacencyArrays.load(tmp_path / "out" / "graph")
 
     keep = a != b
     m = sp.coo_matrix((w[keep], (a[keep], b[keep])), shape=(n, n))

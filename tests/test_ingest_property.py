@@ -11,7 +11,7 @@ import pyarrow.parquet as pq
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from graphkit.errors import GraphDataWarning
-from graphkit.graph import SparseGraph
+from graphkit.graph import AdjacencyArrays
 from graphkit.ingest import ingest_edges
 
 ID_TYPES = {
@@ -46,7 +46,7 @@ def test_ingest_equals_networkx(table):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", GraphDataWarning)
             ingest_edges(str(tmp / "e.parquet"), tmp / "out", source="s", target="t", weight="w", directed=directed)
-        g = SparseGraph.load(tmp / "out" / "graph", mmap=False)
+        g = AdjacencyArrays.load(tmp / "out" / "graph", mmap=False)
         ids = pq.read_table(tmp / "out" / "nodes.parquet").column("node_id").to_pylist()
 
     ref = nx.DiGraph() if directed else nx.Graph()

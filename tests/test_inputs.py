@@ -14,7 +14,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from graphkit.errors import EdgeTableError
-from graphkit.graph import SparseGraph
+from graphkit.graph import AdjacencyArrays
 from graphkit.ingest import EdgeTable, ingest_tables, validate_edge_tables
 
 
@@ -24,7 +24,7 @@ def _w(path, **cols):
 
 
 def _load(out):
-    g = SparseGraph.load(out / "graph")
+    g = AdjacencyArrays.load(out / "graph")
     t = pq.read_table(out / "nodes.parquet")
     return g, list(zip(t.column("node_kind").to_pylist(), t.column("node_id").to_pylist()))
 

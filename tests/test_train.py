@@ -563,12 +563,12 @@ def test_quality_matches_gensim(planted_corpus, objective):
 def test_alias_table_is_the_walks_table_of_one_node():
     # One alias kernel (graphkit.alias) behind both public tables: the training table of a distribution equals the
     # walks' table of a node whose out-edges carry the same weights (a full column reads 2**32 in training).
-    from graphkit.graph import SparseGraph
+    from graphkit.graph import AdjacencyArrays
     from graphkit.walks import alias_table as walk_alias_table
 
     w = np.random.default_rng(3).random(257).astype(np.float32) + np.float32(0.01)
     thresh, alias = alias_table(w)
-    g = SparseGraph.from_arrays(np.array([0, w.size] + [w.size] * w.size, dtype=np.int64),
+    g = AdjacencyArrays.from_arrays(np.array([0, w.size] + [w.size] * w.size, dtype=np.int64),
                                 np.arange(1, w.size + 1, dtype=np.int32), w, directed=True)
     packed = walk_alias_table(g)
     np.testing.assert_array_equal(alias, (packed & np.uint64(0xFFFFFFFF)).astype(np.int32))

@@ -22,7 +22,7 @@ from graphkit.config import load_config
 from graphkit.errors import StoreError
 from graphkit.features import export_features
 from graphkit.foldin import neighbour_mean_vectors
-from graphkit.graph import SparseGraph
+from graphkit.graph import AdjacencyArrays
 from graphkit.store import (align_to_current, apply_retention, connect, list_versions, pin_version,
                             promote_version, publish_embeddings, read_table, read_version)
 
@@ -231,7 +231,7 @@ def test_refresh_records_alignment_residual(tmp_path, monkeypatch):
 
 
 def test_neighbour_mean_fold_in():
-    g = SparseGraph.from_edges([0, 0, 1, 3], [1, 2, 2, 4], [1.0, 3.0, 1.0, 1.0], n_nodes=5)
+    g = AdjacencyArrays.from_edges([0, 0, 1, 3], [1, 2, 2, 4], [1.0, 3.0, 1.0, 1.0], n_nodes=5)
     known = np.array([-1, 0, 1, -1, -1])  # nodes 1 and 2 have vectors; 0, 3, 4 are new
     vecs = np.array([[1.0, 0.0], [0.0, 1.0]], np.float32)
     means, has = neighbour_mean_vectors(g, known, vecs, np.array([0, 3]))

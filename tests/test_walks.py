@@ -16,7 +16,7 @@ from conftest import graph_from_nx
 
 from graphkit import walks as gw
 from graphkit.errors import ConfigError
-from graphkit.graph import SparseGraph
+from graphkit.graph import AdjacencyArrays
 from graphkit.walks import count_visits, random_walks, walk_range
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -148,7 +148,7 @@ def with_weights(g, seed=0, low=0.2, high=5.0):
     if not g.directed:  # one weight per undirected edge: from_edges adds the reverse
         keep = src <= dst
         src, dst, w = src[keep], dst[keep], w[keep]
-    return SparseGraph.from_edges(src, dst, w, n_nodes=g.n_nodes, directed=g.directed)
+    return AdjacencyArrays.from_edges(src, dst, w, n_nodes=g.n_nodes, directed=g.directed)
 
 
 # ------------------------------------------------------------------------------------------ kernel vs reference
@@ -210,7 +210,7 @@ def test_alias_table_matches_reference_and_is_exact():
     src = np.concatenate([np.zeros(400, np.int64), rng.integers(1, 300, 900)])
     dst = np.concatenate([np.arange(1, 401), rng.integers(1, 300, 900)])
     w = np.exp(rng.uniform(np.log(1e-6), np.log(1e3), src.size))
-    g = SparseGraph.from_edges(src, dst, w, n_nodes=420, directed=True)
+    g = AdjacencyArrays.from_edges(src, dst, w, n_nodes=420, directed=True)
     table = gw.alias_table(g)
     assert table.dtype == np.uint64 and table.shape == (g.n_edges,)
     assert table.tolist() == ref_alias(g.indptr.tolist(), g.weights.tolist())
@@ -283,12 +283,12 @@ def test_kernel_without_jit_matches(two_cliques, graph_with_isolated, small_dire
     script = textwrap.dedent(f"""
         import json, sys, warnings
         import numpy as np
-        from graphkit.graph import SparseGraph
+        from graphkit.graph import AdjacencyArrays
         from graphkit.walks import random_walks, count_visits
         out = {{}}
         with np.errstate(over="ignore"):  # uint64 wrap-around is intended; numpy scalars warn about it
             for name in {list(graphs)!r}:
-                g = SparseGraph.load({str(tmp_path)!r} + "/" + name)
+                g = AdjacencyArrays.load({str(tmp_path)!r} + "/" + name)
                 w1 = random_walks(g, 2, 7, seed=42, threads=1)
                 w2 = random_walks(g, 2, 7, seed=42, threads=2)
                 out[name] = [w1.tolist(), w2.tolist(), count_visits(w1, g.n_nodes).tolist()]
@@ -315,8 +315,8 @@ def test_parallel_kernel_loads_from_cache(path_graph):
     random_walks(path_graph, 2, 5, seed=1, threads=2)  # makes sure the cache file exists
     script = textwrap.dedent("""
         from graphkit import walks
-        from graphkit.graph import SparseGraph
-        g = SparseGraph.from_edges([0, 1], [1, 2])
+        from graphkit.graph import AdjacencyArrays
+        g = AdjacencyArrays.from_edges([0, 1], [1, 2])
         walks.random_walks(g, 2, 5, seed=1, threads=2)
         st = walks._walks_parallel_kernel.stats
         print(sum(st.cache_hits.values()), sum(st.cache_misses.values()))
@@ -330,7 +330,7 @@ def test_parallel_kernel_loads_from_cache(path_graph):
 # ------------------------------------------------------------------------------------------ structure
 def test_each_pass_starts_one_walk_at_every_node():
     for n in (1, 2, 3, 5, 255, 256, 257, 1000):
-        g = SparseGraph.from_edges(np.arange(n), (np.arange(n) + 1) % n, n_nodes=n)
+        g = AdjacencyArrays.from_edges(np.arange(n), (np.arange(n) + 1) % n, n_nodes=n)
         w = random_walks(g, 4, 2, seed=7)
         for p in range(4):
             np.testing.assert_array_equal(np.sort(w[p * n:(p + 1) * n, 0]), np.arange(n))
@@ -341,7 +341,7 @@ def test_passes_are_shuffled_independently():
     # permutations Spearman's rho has standard deviation 1/sqrt(n - 1) (scipy.stats.spearmanr, standard result);
     # with n = 2000 that is 0.022, and the bound 0.12 is more than 5 standard deviations.
     n, per_node = 2000, 6
-    g = SparseGraph.from_edges(np.arange(n), (np.arange(n) + 1) % n, n_nodes=n)
+    g = AdjacencyArrays.from_edges(np.arange(n), (np.arange(n) + 1) % n, n_nodes=n)
     orders = random_walks(g, per_node, 2, seed=3)[:, 0].reshape(per_node, n)
     for p in range(per_node):
         assert abs(scipy.stats.spearmanr(np.arange(n), orders[p])[0]) < 0.12
@@ -355,7 +355,7 @@ def test_shuffle_is_uniform_over_all_orders_of_a_small_graph():
     # (scipy.stats.chisquare) must not reject uniformity at the 1e-3 level (deterministic: the seed is fixed).
     # A Feistel network over only 3 bits fails this with p < 1e-200, which is why MIN_PERM_BITS exists.
     n, passes = 5, 24_000
-    g = SparseGraph.from_edges(np.arange(n), (np.arange(n) + 1) % n, n_nodes=n)
+    g = AdjacencyArrays.from_edges(np.arange(n), (np.arange(n) + 1) % n, n_nodes=n)
     orders = random_walks(g, passes, 2, seed=1)[:, 0].reshape(passes, n).astype(np.int64)
     code = orders @ (n ** np.arange(n))
     _, counts = np.unique(code, return_counts=True)
@@ -587,7 +587,7 @@ def test_memory_mapped_weighted_graph_and_alias_give_same_walks(two_cliques, tmp
     g = with_weights(two_cliques)
     g.save(tmp_path / "g")
     np.save(tmp_path / "alias.npy", gw.alias_table(g))
-    mapped = SparseGraph.load(tmp_path / "g", mmap=True)
+    mapped = AdjacencyArrays.load(tmp_path / "g", mmap=True)
     alias = np.load(tmp_path / "alias.npy", mmap_mode="r")
     np.testing.assert_array_equal(random_walks(mapped, 3, 8, seed=5, p=0.5, q=2.0, alias=alias),
                                   random_walks(g, 3, 8, seed=5, p=0.5, q=2.0))
@@ -595,13 +595,13 @@ def test_memory_mapped_weighted_graph_and_alias_give_same_walks(two_cliques, tmp
 
 def test_memory_mapped_graph_gives_same_walks(two_cliques, tmp_path):
     two_cliques.save(tmp_path / "g")
-    g = SparseGraph.load(tmp_path / "g", mmap=True)
+    g = AdjacencyArrays.load(tmp_path / "g", mmap=True)
     np.testing.assert_array_equal(random_walks(g, 3, 8, seed=5), random_walks(two_cliques, 3, 8, seed=5))
 
 
 def test_empty_range_and_empty_graph(path_graph):
     assert walk_range(path_graph, 3, 3, per_node=1, length=4, seed=0).shape == (0, 4)
-    empty = SparseGraph.from_edges([], [], n_nodes=0)
+    empty = AdjacencyArrays.from_edges([], [], n_nodes=0)
     assert random_walks(empty, 2, 4).shape == (0, 4)
 
 
@@ -642,7 +642,7 @@ def test_visit_slope_matches_degree_slope_on_a_scale_free_graph():
 
 def test_diagnostics_counts(small_directed):
     # 0->1, 1->2, 2->0, 2->3 plus two isolated nodes 4, 5 (no edge in or out)
-    g = SparseGraph.from_edges([0, 1, 2, 2], [1, 2, 0, 3], n_nodes=6, directed=True)
+    g = AdjacencyArrays.from_edges([0, 1, 2, 2], [1, 2, 0, 3], n_nodes=6, directed=True)
     w = random_walks(g, 5, 10, seed=1, dead_end="restart")
     visits = count_visits(w, 6)
     d = gw.walk_diagnostics(visits, g.degrees(), per_node=5, in_degrees=np.bincount(g.indices, minlength=6),
@@ -702,11 +702,11 @@ def test_bad_alias_and_unsorted_graph_raise(two_cliques, path_graph):
         gw.alias_table(path_graph)
     with pytest.raises(ConfigError, match=r"out must be a writeable C-contiguous uint64 array of shape \(42,\)"):
         gw.alias_table(g, out=np.zeros(3, np.uint64))
-    bad = SparseGraph(g.indptr, g.indices, np.where(np.arange(g.n_edges) == 3, 0, g.weights).astype(np.float32))
+    bad = AdjacencyArrays(g.indptr, g.indices, np.where(np.arange(g.n_edges) == 3, 0, g.weights).astype(np.float32))
     with pytest.raises(ConfigError, match=r"weights must be finite and > 0"):
         random_walks(bad, 1, 5)
     # rows not sorted: fine for first-order walks, refused for second-order ones (their edge test bisects rows)
-    rows = SparseGraph.from_arrays([0, 2, 3, 4], [2, 1, 0, 0])
+    rows = AdjacencyArrays.from_arrays([0, 2, 3, 4], [2, 1, 0, 0])
     assert random_walks(rows, 1, 4, seed=0).shape == (3, 4)
     with pytest.raises(ConfigError, match=r"sorted ascending; node 0 is not"):
         random_walks(rows, 1, 4, p=2.0)
@@ -719,7 +719,7 @@ def test_bad_range_and_graph_raise(path_graph):
         walk_range(path_graph, 4, 3, per_node=2, length=5, seed=0)
     with pytest.raises(ConfigError, match=r"start must be >= 0, got -1"):
         walk_range(path_graph, -1, 3, per_node=2, length=5, seed=0)
-    with pytest.raises(ConfigError, match=r"graph must be a SparseGraph, got dict"):
+    with pytest.raises(ConfigError, match=r"graph must be an AdjacencyArrays, got dict"):
         random_walks({}, 2, 5)
 
 

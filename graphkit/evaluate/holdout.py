@@ -9,7 +9,7 @@ import numpy as np
 
 from ..checks import check_int as _check_int
 from ..errors import ConfigError, GraphDataWarning
-from ..graph import SparseGraph
+from ..graph import AdjacencyArrays
 from .validate import _check_ratio, _check_seed
 
 __all__ = ["EdgeHoldout", "holdout_edges"]
@@ -23,7 +23,7 @@ class EdgeHoldout(tuple):
 
     Attributes
     ----------
-    train_graph : SparseGraph
+    train_graph : AdjacencyArrays
     positives : ndarray of int32, shape (n_held_out, 2)
     negatives : ndarray of int32, shape (n_negatives, 2)
     counts : dict of str to int
@@ -52,9 +52,10 @@ def _edge_keys(graph) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     dst = np.asarray(graph.indices, dtype=np.int64)
     src = np.repeat(np.arange(n, dtype=np.int64), np.diff(indptr))
     keys = src * np.int64(n) + dst
-    # Membership tests below binary-search these keys; SparseGraph.from_edges builds sorted, duplicate-free rows.
+    # Membership tests below binary-search these keys; AdjacencyArrays.from_edges builds sorted, duplicate-free rows.
     if keys.size > 1 and not np.all(keys[1:] > keys[:-1]):
-        raise ConfigError("graph rows must be sorted ascending without duplicates (as SparseGraph.from_edges builds them)")
+        raise ConfigError("graph rows must be sorted ascending without duplicates "
+                          "(as AdjacencyArrays.from_edges builds them)")
     return src, dst, keys
 
 
@@ -166,7 +167,7 @@ def holdout_edges(graph, fraction=0.1, *, seed=0, max_edges=None) -> EdgeHoldout
 
     Parameters
     ----------
-    graph : SparseGraph
+    graph : AdjacencyArrays
         Rows sorted ascending without duplicate entries; an undirected graph stores both directions of each edge.
     fraction : float, default 0.1
         Share of the candidate edges (undirected edges, or arcs, without self-loops) to hold out, in (0, 1);
@@ -183,7 +184,7 @@ def holdout_edges(graph, fraction=0.1, *, seed=0, max_edges=None) -> EdgeHoldout
     EdgeHoldout
         Unpacks as ``(train_graph, positives, negatives)``:
 
-        - ``train_graph`` : SparseGraph without the held-out edges (both directions when undirected), same nodes,
+        - ``train_graph`` : AdjacencyArrays without the held-out edges (both directions when undirected), same nodes,
           weights and ``directed`` flag;
         - ``positives`` : ndarray of int32, shape (n_held_out, 2): held-out edges, ``u < v`` when undirected, in
           CSR order;
@@ -194,11 +195,11 @@ def holdout_edges(graph, fraction=0.1, *, seed=0, max_edges=None) -> EdgeHoldout
     Raises
     ------
     ConfigError
-        ``graph`` is not a SparseGraph, has unsorted rows or is not symmetric where it claims to be undirected;
+        ``graph`` is not an AdjacencyArrays, has unsorted rows or is not symmetric where it claims to be undirected;
         ``fraction`` or ``seed`` is out of range.
     """
-    if not isinstance(graph, SparseGraph):
-        raise ConfigError(f"graph must be a SparseGraph, got {type(graph).__name__}")
+    if not isinstance(graph, AdjacencyArrays):
+        raise ConfigError(f"graph must be an AdjacencyArrays, got {type(graph).__name__}")
     fraction = _check_ratio("fraction", fraction)
     max_edges = None if max_edges is None else _check_int("max_edges", max_edges, 1)
     rng = np.random.default_rng(_check_seed(seed))
@@ -239,7 +240,7 @@ def holdout_edges(graph, fraction=0.1, *, seed=0, max_edges=None) -> EdgeHoldout
     indptr = np.asarray(graph.indptr, dtype=np.int64).copy()
     indptr[1:] -= np.cumsum(removed)
     weights = None if graph.weights is None else np.asarray(graph.weights)[keep]
-    train = SparseGraph.from_arrays(indptr, np.asarray(graph.indices)[keep], weights, directed=graph.directed)
+    train = AdjacencyArrays.from_arrays(indptr, np.asarray(graph.indices)[keep], weights, directed=graph.directed)
 
     degree = np.diff(np.asarray(graph.indptr, dtype=np.int64))
     if graph.directed:

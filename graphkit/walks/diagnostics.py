@@ -58,7 +58,7 @@ def walk_diagnostics(visit_counts, degrees, *, per_node, in_degrees=None, n_rest
     visit_counts : array_like of int, shape (n_nodes,)
         Occurrences of every node in the corpus (:func:`count_visits`, summed over shards).
     degrees : array_like of int, shape (n_nodes,)
-        Out-degree of every node (``SparseGraph.degrees()``).
+        Out-degree of every node (``AdjacencyArrays.degrees()``).
     per_node : int
         Walks started at every node; the corpus has ``per_node * n_nodes`` walks.
     in_degrees : array_like of int, shape (n_nodes,), optional

@@ -13,7 +13,7 @@ from ..alias import alias_table_kernel
 from ..checks import LENGTH_MIN, P_Q_RANGE, PER_NODE_MIN, SEED_MAX, THREADS_MIN, max_threads
 from ..checks import check_int as _check_int
 from ..errors import ConfigError
-from ..graph import SparseGraph
+from ..graph import AdjacencyArrays
 from .kernels import (MIN_PERM_BITS, _count_restarts_kernel, _count_visits_kernel, _first_unsorted_kernel,
                       _walks_parallel_kernel, _walks_serial_kernel)
 
@@ -61,8 +61,8 @@ def _check_threads(threads):
 
 
 def _check_graph(graph):
-    if not isinstance(graph, SparseGraph):
-        raise ConfigError(f"graph must be a SparseGraph, got {type(graph).__name__}")
+    if not isinstance(graph, AdjacencyArrays):
+        raise ConfigError(f"graph must be an AdjacencyArrays, got {type(graph).__name__}")
 
 
 def _readonly(a):
@@ -107,7 +107,7 @@ def alias_table(graph, *, out=None) -> np.ndarray:
 
     Parameters
     ----------
-    graph : SparseGraph
+    graph : AdjacencyArrays
         With ``weights`` (finite and > 0).
     out : ndarray of uint64, shape (n_edges,), optional
         Where to write the table (for example a memory-mapped ``.npy`` file); allocated when omitted.
@@ -174,7 +174,7 @@ def prepare_walker(graph, *, weighted, p, q, dead_end, alias=None, check=True) -
         bad = int(_first_unsorted_kernel(indptr, indices))
         if bad >= 0:
             raise ConfigError(f"second-order walks (p, q not 1) need every node's out-neighbours sorted ascending; "
-                              f"node {bad} is not (build the graph with SparseGraph.from_edges)")
+                              f"node {bad} is not (build the graph with AdjacencyArrays.from_edges)")
     return Walker(indptr, indices, alias, acceptance_thresholds(p, q), second, dead_end == "restart")
 
 
@@ -207,7 +207,7 @@ def walk_range(graph, start, stop, *, per_node, length, seed, threads=None, weig
 
     Parameters
     ----------
-    graph : SparseGraph
+    graph : AdjacencyArrays
         Walks follow the stored out-edges (both directions of an undirected edge are stored).
     start, stop : int
         ``0 <= start <= stop <= per_node * graph.n_nodes``.
@@ -260,7 +260,7 @@ def random_walks(graph, per_node, length, seed=0, *, threads=None, weighted=True
 
     Parameters
     ----------
-    graph : SparseGraph
+    graph : AdjacencyArrays
     per_node : int
         Number of passes, ``>= 1``.
     length : int

@@ -31,7 +31,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
 
 import graphkit  # noqa: E402
-from graphkit import SparseGraph  # noqa: E402
+from graphkit import AdjacencyArrays  # noqa: E402
 from graphkit.evaluate import (auc_delong, auc_se_hanley_mcneil, holdout_edges, link_prediction,  # noqa: E402
                                node_classification)
 
@@ -57,7 +57,7 @@ def digits_graph(k: int = 10):
 
     data = load_digits()
     knn = kneighbors_graph(data.data, n_neighbors=k, mode="connectivity", include_self=False).tocoo()
-    return SparseGraph.from_edges(knn.row, knn.col, n_nodes=data.data.shape[0]), data.target
+    return AdjacencyArrays.from_edges(knn.row, knn.col, n_nodes=data.data.shape[0]), data.target
 
 
 def train(graph, seed: int) -> np.ndarray:

@@ -47,13 +47,13 @@ def planted_graph(n_blocks=50, block_size=200, in_deg=6.0, out_deg=6.0, seed=7):
     g = nx.planted_partition_graph(n_blocks, block_size, in_deg / (block_size - 1), out_deg / (n - block_size),
                                    seed=seed)
     edges = np.array(list(g.edges()), dtype=np.int64).reshape(-1, 2)
-    graph = graphkit.SparseGraph.from_edges(edges[:, 0], edges[:, 1], n_nodes=n)
+    graph = graphkit.AdjacencyArrays.from_edges(edges[:, 0], edges[:, 1], n_nodes=n)
     return graph, np.repeat(np.arange(n_blocks), block_size)
 
 
 def random_graph(n_nodes, avg_degree, seed=3):
     """Uniform random graph in O(E): ``n_nodes * avg_degree / 2`` endpoint pairs drawn uniformly; the self-loops are
-    dropped and the duplicates (a tiny fraction) merged by SparseGraph.from_edges."""
+    dropped and the duplicates (a tiny fraction) merged by AdjacencyArrays.from_edges."""
     rng = np.random.default_rng(seed)
     m = n_nodes * avg_degree // 2
     src = rng.integers(0, n_nodes, m, dtype=np.int64)
@@ -61,7 +61,7 @@ def random_graph(n_nodes, avg_degree, seed=3):
     src, dst = src[src != dst], dst[src != dst]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", GraphDataWarning)
-        return graphkit.SparseGraph.from_edges(src, dst, n_nodes=n_nodes)
+        return graphkit.AdjacencyArrays.from_edges(src, dst, n_nodes=n_nodes)
 
 
 def micro_f1(vectors, labels, n_splits=5, train_size=0.1, seed=0):

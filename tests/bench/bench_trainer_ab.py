@@ -2,8 +2,8 @@
 
 Each side runs in its own process from its own checkout (``git worktree add --detach`` of ``--against`` in a
 temporary folder; the working tree for the other side), builds the same uniform random graph with its own
-``SparseGraph.from_edges`` and ``random_walks``, compiles on a small slice, then times ``train_vectors`` on the whole
-corpus. The sides alternate (A, B, A, B, ...) so that a change of load hits both; the load average is printed
+CSR graph class (``from_edges``) and ``random_walks``, compiles on a small slice, then times ``train_vectors`` on the
+whole corpus. The sides alternate (A, B, A, B, ...) so that a change of load hits both; the load average is printed
 beside each run. Run by hand, not by the test suite::
 
     .venv/bin/python tests/bench/bench_trainer_ab.py --against b7af78b --nodes 200k --rounds 2
@@ -23,13 +23,14 @@ ROOT = Path(__file__).resolve().parents[2]
 CHILD = r"""
 import sys, time
 import numpy as np
-from graphkit.graph import SparseGraph
+import graphkit.graph as gg
 from graphkit.walks import random_walks
 from graphkit.train import train_vectors
 n, per_node, length, dim = (int(a) for a in sys.argv[1:5])
 rng = np.random.default_rng(0)
 src, dst = rng.integers(0, n, n * 10), rng.integers(0, n, n * 10)
-walks = random_walks(SparseGraph.from_edges(src, dst, n_nodes=n), per_node, length, seed=0)
+graph_class = getattr(gg, "AdjacencyArrays", None) or getattr(gg, "SparseGraph")  # the class's name before 2026-12-04
+walks = random_walks(graph_class.from_edges(src, dst, n_nodes=n), per_node, length, seed=0)
 train_vectors(walks[:2000], n, dim=dim)  # compile (or load the cache) outside the clock
 t0 = time.perf_counter()
 train_vectors(walks, n, dim=dim)

@@ -48,7 +48,7 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
 from graphkit import walks as gw  # noqa: E402
-from graphkit.graph import SparseGraph  # noqa: E402
+from graphkit.graph import AdjacencyArrays  # noqa: E402
 
 SEED = 1
 P, Q = 0.5, 2.0
@@ -87,7 +87,7 @@ def _csr_kernel(src, dst, n, indptr, indices):
     return out
 
 
-def build_graph(n, degree, kind, seed=0) -> SparseGraph:
+def build_graph(n, degree, kind, seed=0) -> AdjacencyArrays:
     rng = np.random.default_rng(seed)
     m = n * degree // 2
     if kind == "uniform":
@@ -103,7 +103,7 @@ def build_graph(n, degree, kind, seed=0) -> SparseGraph:
     indptr = np.empty(n + 1, np.int64)
     indices = np.empty(2 * src.size, np.int32)
     stored = _csr_kernel(src, dst, n, indptr, indices)
-    return SparseGraph.from_arrays(indptr, indices[:stored].copy())
+    return AdjacencyArrays.from_arrays(indptr, indices[:stored].copy())
 
 
 def pair_weights(graph) -> np.ndarray:
@@ -298,7 +298,7 @@ def child(name, graph_dir, length, threads) -> None:
     import psutil
 
     weighted = (Path(graph_dir) / "weights.npy").exists()
-    graph = SparseGraph(np.load(Path(graph_dir) / "indptr.npy"), np.load(Path(graph_dir) / "indices.npy"),
+    graph = AdjacencyArrays(np.load(Path(graph_dir) / "indptr.npy"), np.load(Path(graph_dir) / "indices.npy"),
                      np.load(Path(graph_dir) / "weights.npy") if weighted else None)
     extra, _, _ = prepare(name, graph)
     run(name, graph, extra, min(10_000, graph.n_nodes), length, threads)
@@ -344,7 +344,7 @@ def main(argv=None) -> int:
     load0 = os.getloadavg()
     t0 = time.perf_counter()
     plain = build_graph(args.nodes, args.degree, args.graph)
-    weighted = SparseGraph.from_arrays(plain.indptr, plain.indices, pair_weights(plain), validate=False)
+    weighted = AdjacencyArrays.from_arrays(plain.indptr, plain.indices, pair_weights(plain), validate=False)
     deg = plain.degrees()
     print(f"graph: {args.graph} random, {plain.n_nodes:,} nodes, {plain.n_edges:,} stored edges "
           f"(average degree {plain.n_edges / plain.n_nodes:.2f}, max {deg.max():,}, isolated {(deg == 0).sum():,}); "
