@@ -11,7 +11,7 @@ from .errors import ConfigError
 
 __all__ = ["check_int", "max_threads", "SEED_MAX", "PER_NODE_MIN", "LENGTH_MIN", "P_Q_RANGE", "DIM_RANGE",
            "WINDOW_MIN", "NEGATIVES_MIN", "EPOCHS_MIN", "MIN_LEARNING_RATE", "LEARNING_RATE_MAX",
-           "SUBSAMPLE_RANGE", "THREADS_MIN"]
+           "SUBSAMPLE_RANGE", "THREADS_MIN", "NEIGHBOURS_MIN"]
 
 
 def check_int(name, value, minimum, maximum=None) -> int:
@@ -50,6 +50,8 @@ LEARNING_RATE_MAX = 1.0
 SUBSAMPLE_RANGE = (0.0, 1.0)
 #: Training and walk threads, at least 1 and at most numba's thread pool (:func:`max_threads`).
 THREADS_MIN = 1
+#: Neighbours per node of `graphkit neighbours --top` and `[store] neighbours`.
+NEIGHBOURS_MIN = 1
 
 
 def max_threads() -> int:

@@ -345,6 +345,27 @@ def cmd_similar(args) -> int:
     return 0
 
 
+def cmd_neighbours(args) -> int:
+    from .neighbours import NeighbourIndex, check_top, scope_size, version_neighbours
+    from .store import connect, version_files, version_row
+
+    connect(args.store, version=args.version).close()  # a missing store or version first
+    row = version_row(Path(args.store), args.version)
+    parquet = version_files(Path(args.store), row["path"])[0]
+    n_nodes, scope = scope_size(parquet, args.kind)
+    check_top(args.top, n_nodes, scope=scope)  # a bad --top or --kind before the output's checks
+    out, _ = output_file(args.out, formats={".parquet": "parquet"}, store=args.store)
+    make_parent(out)
+    # the index published with the version holds every node: used as it is, unless --kind asks for one kind
+    index = NeighbourIndex(parquet.parent).index if args.kind is None and NeighbourIndex.exists(parquet.parent) \
+        else None
+    r = version_neighbours(parquet, out, args.top, kind=args.kind, index=index)
+    source = "its published index" if index is not None else "an index built for this run"
+    print(f"wrote {r['rows']} rows to {out}: {r['nodes']} nodes, top {r['top']}, version {row['version']}, "
+          f"from {source} ({r['seconds']:.1f} s)")
+    return 0
+
+
 def cmd_report(args) -> int:
     from .report import report_title, write_report
     from .store import list_versions, report_inputs
@@ -637,6 +658,17 @@ def build_parser() -> argparse.ArgumentParser:
                         "given raw id (default: the run's [input] hash_salt_env, else GRAPHKIT_ID_SALT)")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_similar)
+
+    nb = sub.add_parser("neighbours", help="every node's most similar nodes (cosine) as a Parquet table, from an "
+                                            "approximate index")
+    nb.add_argument("store")
+    nb.add_argument("--top", type=int, required=True, metavar="K", help="neighbours per node (at least 1)")
+    nb.add_argument("--out", required=True, metavar="FILE.parquet",
+                    help="output table: node_id, node_kind, neighbour_id, neighbour_kind, rank, similarity")
+    nb.add_argument("--version", type=int, default=None, help="version number (default: current)")
+    nb.add_argument("--kind", default=None, metavar="KIND",
+                    help="only nodes of this kind, as query nodes and as neighbours")
+    nb.set_defaults(func=cmd_neighbours)
 
     rp = sub.add_parser("report", help="write an HTML report of a store (plots, metric history, timings)")
     rp.add_argument("store")

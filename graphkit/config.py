@@ -174,6 +174,9 @@ class StoreSection(_Section):
     align: bool = Field(default=True, description="Rotate each new version onto the current one (Procrustes).")
     keep_work_days: float = Field(default=7.0, ge=0, description="Days the stage folders of runs that did not "
                                   "finish are kept for a resume; each finished run removes older ones.")
+    neighbours: int | None = Field(default=None, ge=_b.NEIGHBOURS_MIN, description="Publish every node's this "
+                                   "many nearest neighbours (neighbours.parquet, the view `neighbours`) and their "
+                                   "index, which `graphkit similar` then answers from (none: neither).")
 
 
 class EvaluateSection(_Section):

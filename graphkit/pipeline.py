@@ -592,7 +592,7 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
                           + "; ".join(reasons), version=version, metrics=metrics)
     diagnostics = diagnostic_arrays(**figures) if figures is not None else None
     version = publish_embeddings(plan["store"], node_ids, vectors, node_kinds=node_kinds, keep=cfg.store.keep,
-                                 diagnostics=diagnostics, **record)
+                                 diagnostics=diagnostics, neighbours=cfg.store.neighbours, **record)
     published = next((r for r in list_versions(plan["store"]) if r["version"] == version), {})
     RUN_CLOCK.row_written(plan["store"], float((published.get("timings") or {}).get("publish", 0.0)))
     _place_report(plan, version, report)

@@ -133,9 +133,12 @@ def _version_table(node_ids, vectors, node_kinds, provisional) -> pa.Table:
                      "vector": pa.FixedSizeListArray.from_arrays(flat, dim)})
 
 
-def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics: dict | None = None) -> str:
-    """Write everything of a version aside (Parquet file, native DuckDB copy, diagnostics), then rename the
-    folder into place; nothing is added to it afterwards."""
+def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics: dict | None = None,
+                         neighbours: int | None = None) -> tuple[str, dict | None]:
+    """Write everything of a version aside (Parquet file, native DuckDB copy, diagnostics, and with
+    ``neighbours`` the neighbour index and table of :mod:`graphkit.neighbours`), then rename the folder into
+    place; nothing is added to it afterwards. Returns the Parquet file's path in the store and the neighbour
+    table's figures (None without)."""
     final_dir = store / _version_dir(version)
     tmp_dir = store / "versions" / f".tmp-{version:06d}-{os.getpid()}"
     if final_dir.exists():  # a dead run renamed its folder but never reached the catalog: not visible, replace it
@@ -152,6 +155,12 @@ def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics
     finally:
         con.close()
     names = ["embeddings.parquet", "embeddings.duckdb"]
+    figures = None
+    if neighbours is not None:
+        from ..neighbours import INDEX_FILE, TABLE_FILE, write_neighbours
+
+        figures = write_neighbours(tmp_dir, neighbours)
+        names += [INDEX_FILE, TABLE_FILE]
     if diagnostics:
         np.savez_compressed(tmp_dir / "diagnostics.npz", **diagnostics)
         names.append("diagnostics.npz")
@@ -161,7 +170,7 @@ def _write_version_files(store: Path, version: int, table: pa.Table, diagnostics
     lock.fsync_dir(tmp_dir)
     lock.replace_durably(tmp_dir, final_dir)
     fault_point("publish-version-renamed")  # the version's folder in place, the catalog not yet switched
-    return f"{_version_dir(version)}/embeddings.parquet"
+    return f"{_version_dir(version)}/embeddings.parquet", figures
 
 
 def clean_stale(store) -> list[str]:
@@ -204,6 +213,12 @@ def _sweep_versions(store: Path) -> list[str]:
 
 
 
+def neighbour_table(store: Path, rel_path: str) -> Path | None:
+    """The neighbour table of a version (from its catalog path), or None when it was published without one."""
+    path = (Path(store) / rel_path).resolve().parent / "neighbours.parquet"
+    return path if path.exists() else None
+
+
 def _next_version(con) -> int:
     return int(con.execute("select coalesce(max(version), 0) + 1 from versions").fetchall()[0][0])
 
@@ -212,13 +227,17 @@ def _create_views(con, store: Path) -> None:
     """(Re)create the Parquet-backed views and the macros from the versions table, inside the caller's
     transaction: one view per kept complete version, ``embeddings`` for the current one."""
     for (name,) in con.execute("select view_name from duckdb_views() where not temporary and "
-                               "view_name like 'embeddings%'").fetchall():
+                               "(view_name like 'embeddings%' or view_name like 'neighbours%')").fetchall():
         con.execute(inline("drop view $view", {"view": Identifier(name)}))  # a name cannot be bound
     rows = con.execute("select version, path, dim, is_current from versions where status = 'complete'").fetchall()
     for v, rel_path, dim, is_current in rows:
         path = str((store / rel_path).resolve())  # absolute: a relative path would be read from the reader's cwd
         for view in [f"embeddings_v{v:06d}"] + (["embeddings"] if is_current else []):
             con.execute(inline(load_sql("embeddings"), {"view": Identifier(view), "path": path, "dim": int(dim)}))
+        table = neighbour_table(store, rel_path)
+        if table is not None:  # published with [store] neighbours
+            for view in [f"neighbours_v{v:06d}"] + (["neighbours"] if is_current else []):
+                con.execute(inline(load_sql("neighbours"), {"view": Identifier(view), "path": str(table)}))
     if any(r[3] for r in rows):
         con.execute(load_sql("macros"))
 
@@ -316,7 +335,8 @@ def diagnostic_arrays(*, degrees, visit_counts=None, labels=None) -> dict[str, n
 def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params: dict, fingerprint: list,
                        counts: dict, timings: dict, metrics: dict | None = None, objective: str | None = None,
                        node_kinds: pa.Array | None = None, provisional=None, keep: int | None = None,
-                       run_id: str | None = None, diagnostics: dict | None = None) -> int:
+                       run_id: str | None = None, diagnostics: dict | None = None,
+                       neighbours: int | None = None) -> int:
     """Publish a complete new version and make it current.
 
     Holds the store's writer lock (re-entrant: a refresh already holds it). Everything of the version is
@@ -345,6 +365,10 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
         Default: a fresh id (every call publishes).
     diagnostics : dict of str to ndarray, optional
         Per-node figures for the report (:func:`diagnostic_arrays`), stored in the version's folder.
+    neighbours : int, optional
+        Also write every node's this many nearest neighbours (``neighbours.parquet``) and their index
+        (``neighbours.index``) into the version's folder before it becomes visible (:mod:`graphkit.neighbours`);
+        the catalog then has the view ``neighbours`` over the current version's table.
 
     Returns
     -------
@@ -373,8 +397,12 @@ def publish_embeddings(store, node_ids: pa.Array, vectors: np.ndarray, *, params
                 version = _next_version(con)
             finally:
                 con.close()
-        rel_path = _write_version_files(store, version, table, diagnostics)
+        rel_path, figures = _write_version_files(store, version, table, diagnostics, neighbours)
         timings = {**timings, "publish": round(time.perf_counter() - t0, 3)}
+        if figures is not None:
+            # its seconds are part of the publish's: kept beside the counts, not summed twice in the timings
+            counts = {**counts, "neighbours": {"top": figures["top"], "rows": figures["rows"],
+                                               "seconds": figures["seconds"]}}
         row = _row(version, "complete", params=params, fingerprint=fingerprint, counts=counts, timings=timings,
                    metrics=metrics, objective=objective, path=rel_path, n_nodes=int(vectors.shape[0]),
                    dim=int(vectors.shape[1]), is_current=True, run_id=run_id)

@@ -12,8 +12,9 @@ import pyarrow as pa
 
 from ..errors import InputError, StoreError
 from ..io import atomic_output
+from ..neighbours import NeighbourIndex
 from ..sql import Identifier, inline, load_sql
-from .catalog import CATALOG, gather_rows, list_versions, load_diagnostics, version_row
+from .catalog import CATALOG, gather_rows, list_versions, load_diagnostics, neighbour_table, version_row
 
 __all__ = ["connect", "version_files", "similar_nodes", "export_version", "spread_vectors",
            "report_inputs"]
@@ -82,6 +83,14 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
             for view in views:
                 con.execute(inline(load_sql("session_embeddings"),
                                    {"view": Identifier(view), "source": source, "dim": int(dim)}))
+            table = neighbour_table(store, rel_path)
+            if table is not None:  # published with [store] neighbours: read through Arrow, like a bare Parquet
+                import pyarrow.dataset as ds
+
+                source = Identifier(f"_neighbours_{alias}")
+                con.register(source, ds.dataset(str(table), format="parquet"))
+                for view in [f"neighbours_v{v:06d}"] + (["neighbours"] if "embeddings" in views else []):
+                    con.execute(inline(load_sql("session_neighbours"), {"view": Identifier(view), "source": source}))
         # the catalog's own macros are as old as its last write: this package's definitions shadow them
         con.execute(load_sql("macros").replace("create or replace macro ", "create or replace temp macro "))
         con.execute("set allowed_directories = $dirs", {"dirs": [str(store.resolve()) + os.sep]})
@@ -95,12 +104,16 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
 
 
 def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None, kind: str | None = None,
-                  id_kind: str | None = None, salt_env: str | None = None) -> list[tuple]:
+                  id_kind: str | None = None, salt_env: str | None = None, *, use_index: bool = True,
+                  index=None) -> list[tuple]:
     """The ``top`` nodes most cosine-similar to ``node_id`` (given as text; always bound as a parameter).
 
     Runs the catalog's ``nearest_neighbours`` macro (``sql/macros.sql``), the one nearest-neighbour query, so the
     answer is the macro's and ``sql/examples/nearest_neighbours.sql``'s: ``kind`` keeps only results of that node
-    kind, ties are broken by node id then kind. ``id_kind`` picks the query node when its id exists under several
+    kind, ties are broken by node id then kind. A version published with ``[store] neighbours`` has a neighbour
+    index (:class:`graphkit.neighbours.NeighbourIndex`): the answer then comes from it, approximate, in the same
+    order and format, unless ``use_index`` is false; ``index`` is that index already open (for many queries).
+    With ``kind`` too rare among the index's nearest results, the macro answers. ``id_kind`` picks the query node when its id exists under several
     kinds. In a version published with hashed ids (lineage ``hashed_ids``) a raw id is hashed with the key in
     environment variable ``salt_env`` (default: the run's ``[input] hash_salt_env``, else ``GRAPHKIT_ID_SALT``);
     a pseudonym given as is is used as is. The results are the store's ids (pseudonyms in a hashed store).
@@ -126,7 +139,8 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
                                               {"node_id": ident, "id_kind": id_kind}).fetchall()]
 
         query_id, kinds = str(node_id), kinds_of(str(node_id))
-        params = version_row(Path(store), version).get("params") or {}
+        row = version_row(Path(store), version)
+        params = row.get("params") or {}
         if not kinds and (params.get("lineage") or {}).get("hashed_ids"):
             from ..ids import hash_ids, salt_from_env
 
@@ -144,6 +158,13 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
         if len(kinds) > 1:
             raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; "
                              "pass --id-kind")
+        folder = version_files(Path(store), row["path"])[0].parent
+        if use_index and (index is not None or NeighbourIndex.exists(folder)):
+            index = index if index is not None else NeighbourIndex(folder)
+            vector = con.execute(load_sql("query_vector"), {"node_id": query_id, "id_kind": kinds[0]}).fetchall()
+            found = index.similar(vector[0][0], int(top), query_id=query_id, query_kind=kinds[0], kind=kind)
+            if found is not None:
+                return found
         return con.execute(load_sql("similar"),
                            {"node_id": query_id, "id_kind": kinds[0], "kind": kind, "k": int(top)}).fetchall()
     finally:
