@@ -91,6 +91,9 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
                 con.register(source, ds.dataset(str(table), format="parquet"))
                 for view in [f"neighbours_v{v:06d}"] + (["neighbours"] if "embeddings" in views else []):
                     con.execute(inline(load_sql("session_neighbours"), {"view": Identifier(view), "source": source}))
+            elif v == version:  # the catalog's `neighbours` is the current version's: not this one's
+                con.execute(inline(load_sql("no_neighbours"), {"message": f"version {v} was published without "
+                                                                          "[store] neighbours: no neighbours view"}))
         # the catalog's own macros are as old as its last write: this package's definitions shadow them
         con.execute(load_sql("macros").replace("create or replace macro ", "create or replace temp macro "))
         con.execute("set allowed_directories = $dirs", {"dirs": [str(store.resolve()) + os.sep]})
