@@ -60,7 +60,7 @@ class IndexSettings:
     recall@10 >= 0.95 at 1M x 128 in the measurements of ``docs/neighbours.md``."""
 
     links: int = 16
-    build_width: int = 100
+    build_width: int = 40
     search_width: int = 64
 
 
@@ -318,15 +318,21 @@ def _empty_table(parquet: Path, out: Path) -> dict:
 class NeighbourIndex:
     """A version's published index, opened once (memory-mapped) and queried many times (``similar``).
 
+    It holds the version's node ids and kinds beside the index, so that a query needs no SQL: the query node is
+    found by its id (compared as text, as the ``nearest_neighbours`` macro compares it) and its vector read back
+    from the index.
+
     Parameters
     ----------
     folder : path
         The version's folder, holding :data:`INDEX_FILE` and ``embeddings.parquet``.
     settings : IndexSettings
         The search width (``search_width``) used at query time.
+    params : dict, optional
+        The version's catalog ``params`` (its lineage says whether ids are hashed).
     """
 
-    def __init__(self, folder, settings: IndexSettings = IndexSettings()):
+    def __init__(self, folder, settings: IndexSettings = IndexSettings(), params: dict | None = None):
         import faiss
 
         folder = Path(folder)
@@ -336,34 +342,58 @@ class NeighbourIndex:
             raise ValueError(f"{folder}: the index holds {self.index.ntotal} vectors, the version "
                              f"{self.ids.num_rows}")
         self.settings = settings
+        self.params = params or {}
         self._kinds = self.ids.column("node_kind")
         self._node_ids = self.ids.column("node_id")
+        self._integer_ids = pa.types.is_integer(self._node_ids.type)
 
     @staticmethod
     def exists(folder) -> bool:
         return (Path(folder) / INDEX_FILE).exists()
 
-    def similar(self, vector, top: int, *, query_id: str, query_kind: str, kind: str | None = None,
-                max_ask: int = 4096) -> list[tuple] | None:
-        """The ``top`` nodes nearest to ``vector`` other than the query node (``query_id`` as text, of kind
-        ``query_kind``), optionally of ``kind`` only: a list of (node_id, node_kind, similarity), best first,
-        ties by node id then kind. None when the kind is too rare among the nearest ``max_ask`` to fill
-        ``top`` (the caller then answers by brute force)."""
-        q = np.asarray(vector, np.float32).reshape(1, -1).copy()
-        norm = float(np.sqrt(np.dot(q[0], q[0])))
-        if norm > 0:
-            q /= norm
+    def _rows_with_id(self, ident: str) -> np.ndarray:
+        if self._integer_ids:
+            try:
+                value = int(ident)
+            except ValueError:
+                return np.zeros(0, np.int64)
+            if str(value) != ident:  # the macro compares text: "042" is not 42
+                return np.zeros(0, np.int64)
+            try:
+                scalar = pa.scalar(value, self._node_ids.type)
+            except (OverflowError, pa.ArrowInvalid):
+                return np.zeros(0, np.int64)
+        else:
+            scalar = pa.scalar(ident, self._node_ids.type)
+        return pc.indices_nonzero(pc.equal(self._node_ids, scalar)).to_numpy()
+
+    def kinds_of(self, ident: str, id_kind: str | None = None) -> list[str]:
+        """The kinds (sorted) under which the id exists, only ``id_kind`` when given."""
+        kinds = sorted({k for k in self._kinds.take(pa.array(self._rows_with_id(ident))).to_pylist()})
+        return [k for k in kinds if id_kind is None or k == id_kind]
+
+    def row_of(self, ident: str, kind: str) -> int:
+        """The row (index label) of the node with this id and kind."""
+        rows = self._rows_with_id(ident)
+        kinds = self._kinds.take(pa.array(rows)).to_pylist()
+        return int(next(r for r, k in zip(rows, kinds) if k == kind))
+
+    def similar(self, row: int, top: int, *, kind: str | None = None, max_ask: int = 4096) -> list[tuple] | None:
+        """The ``top`` nodes nearest to the node in ``row``, itself left out, optionally of ``kind`` only: a list
+        of (node_id, node_kind, similarity), best first, ties by node id then kind. None when the kind is too
+        rare among the nearest ``max_ask`` to fill ``top`` (the caller then answers by brute force)."""
+        q = self.index.reconstruct(int(row)).reshape(1, -1)  # stored at unit length
         n = self.index.ntotal
         ask = min(n, top + 1 + TIE_MARGIN)
         while True:
             self.index.hnsw.efSearch = max(self.settings.search_width, ask)
             scores, labels = self.index.search(q, ask)
-            keep = labels[0] >= 0
+            keep = (labels[0] >= 0) & (labels[0] != row)
             lab, sc = labels[0][keep], scores[0][keep]
             kinds = self._kinds.take(pa.array(lab)).to_pylist()
             ident = self._node_ids.take(pa.array(lab)).to_pylist()
             found = [(i, k, float(min(1.0, max(-1.0, s)))) for i, k, s in zip(ident, kinds, sc)
-                     if not (k == query_kind and str(i) == query_id) and (kind is None or k == kind)]
+                     if kind is None or k == kind]
             if len(found) >= top or ask >= n:
                 break
             if ask >= max_ask:

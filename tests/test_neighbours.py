@@ -301,3 +301,41 @@ def test_similar_from_the_index_agrees_with_brute_force(tmp_path, capsys):
     assert code == 0, err
     assert [line.split("\t")[0] for line in out.splitlines()] == [r[0] for r in similar_nodes(
         tmp_path, ids[0], 3, use_index=False)]
+
+
+def test_similar_from_the_index_looks_ids_up_as_the_macro_does(tmp_path, capsys, monkeypatch):
+    """Integer ids compared as text ("042" is not 42), several kinds under one id, and a raw id hashed with the
+    key in a store of pseudonyms (HMAC-SHA256 from the standard library, independent of graphkit.ids)."""
+    import hashlib
+    import hmac
+    import json
+
+    ints = tmp_path / "ints"
+    publish(ints, np.array([42, 7, 9, 11], np.int64), [[1, 0], [0.9, 0.1], [0, 1], [0.5, 0.5]], neighbours=2)
+    assert similar_nodes(ints, "42", 2) == similar_nodes(ints, "42", 2, use_index=False) != []
+    code, _, err = run(capsys, "similar", ints, "042")
+    assert code == 2 and "'042' is not in the embeddings" in err
+    kinds = tmp_path / "kinds"
+    publish(kinds, ["m-9", "m-9", "a-1", "a-2"], [[1, 0], [0, 1], [0.9, 0.1], [0.1, 0.9]],
+            ["merchant", "account", "account", "account"], neighbours=2)
+    code, _, err = run(capsys, "similar", kinds, "m-9")
+    assert code == 2 and "exists as kinds account, merchant; pass --id-kind" in err
+    assert [r[0] for r in similar_nodes(kinds, "m-9", 1, id_kind="account")] == ["a-2"]
+
+    key = "a-salt-of-twenty-chars"
+
+    def pseudonym(raw):
+        return hmac.new(key.encode(), raw.encode(), hashlib.sha256).hexdigest()
+
+    hashed = tmp_path / "hashed"
+    publish_embeddings(hashed, pa.array([pseudonym(r) for r in ["acct-1", "acct-2", "acct-3"]]),
+                       np.array([[1, 0], [0.8, 0.6], [0, 1]], np.float32), neighbours=2, fingerprint=[],
+                       counts={}, timings={},
+                       params={"input": {"hash_salt_env": "SHOP_ID_KEY"}, "lineage": {"hashed_ids": True}})
+    assert (next(hashed.glob("versions/*")) / INDEX_FILE).exists()
+    monkeypatch.delenv("SHOP_ID_KEY", raising=False)
+    code, _, err = run(capsys, "similar", hashed, "acct-1")
+    assert code == 2 and "SHOP_ID_KEY" in err
+    monkeypatch.setenv("SHOP_ID_KEY", key)
+    code, out, _ = run(capsys, "similar", hashed, "acct-1", "--json")
+    assert [h["node_id"] for h in json.loads(out)] == [pseudonym("acct-2"), pseudonym("acct-3")]

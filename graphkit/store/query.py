@@ -135,43 +135,54 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
     """
     if int(top) < 1:
         raise InputError(f"--top must be >= 1, got {top}")
+    if use_index and index is None:
+        row = version_row(Path(store), version)
+        folder = version_files(Path(store), row["path"])[0].parent
+        if NeighbourIndex.exists(folder):
+            index = NeighbourIndex(folder, params=row.get("params"))
+    if use_index and index is not None:  # no SQL at all: the index holds the ids and the vectors
+        query_id, query_kind = _query_node(store, node_id, id_kind, salt_env, index.params,
+                                           lambda ident: index.kinds_of(ident, id_kind))
+        found = index.similar(index.row_of(query_id, query_kind), int(top), kind=kind)
+        if found is not None:
+            return found
     con = connect(store, version=version)
     try:
         def kinds_of(ident):
             return [k for (k,) in con.execute(load_sql("query_node_kinds"),
                                               {"node_id": ident, "id_kind": id_kind}).fetchall()]
 
-        query_id, kinds = str(node_id), kinds_of(str(node_id))
-        row = version_row(Path(store), version)
-        params = row.get("params") or {}
-        if not kinds and (params.get("lineage") or {}).get("hashed_ids"):
-            from ..ids import hash_ids, salt_from_env
-
-            env = salt_env or (params.get("input") or {}).get("hash_salt_env") or "GRAPHKIT_ID_SALT"
-            try:
-                key = salt_from_env(env)
-            except InputError as exc:
-                raise InputError(f"{store}: the version was published with hashed ids; looking up the raw id "
-                                 f"{node_id!r} needs its key: {exc}") from None
-            query_id = hash_ids([str(node_id)], key)[0].as_py()
-            kinds = kinds_of(query_id)
-        if not kinds:
-            raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings"
-                             + (f" as kind {id_kind!r}" if id_kind else ""))
-        if len(kinds) > 1:
-            raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; "
-                             "pass --id-kind")
-        folder = version_files(Path(store), row["path"])[0].parent
-        if use_index and (index is not None or NeighbourIndex.exists(folder)):
-            index = index if index is not None else NeighbourIndex(folder)
-            vector = con.execute(load_sql("query_vector"), {"node_id": query_id, "id_kind": kinds[0]}).fetchall()
-            found = index.similar(vector[0][0], int(top), query_id=query_id, query_kind=kinds[0], kind=kind)
-            if found is not None:
-                return found
+        params = version_row(Path(store), version).get("params") or {}
+        query_id, query_kind = _query_node(store, node_id, id_kind, salt_env, params, kinds_of)
         return con.execute(load_sql("similar"),
-                           {"node_id": query_id, "id_kind": kinds[0], "kind": kind, "k": int(top)}).fetchall()
+                           {"node_id": query_id, "id_kind": query_kind, "kind": kind, "k": int(top)}).fetchall()
     finally:
         con.close()
+
+
+def _query_node(store, node_id, id_kind, salt_env, params, kinds_of) -> tuple[str, str]:
+    """(id as the version holds it, kind) of `similar`'s query node; ``kinds_of(id)`` lists the kinds holding an
+    id. A raw id in a version with hashed ids is hashed with the key (see :func:`similar_nodes`)."""
+    params = params or {}
+    query_id, kinds = str(node_id), kinds_of(str(node_id))
+    if not kinds and (params.get("lineage") or {}).get("hashed_ids"):
+        from ..ids import hash_ids, salt_from_env
+
+        env = salt_env or (params.get("input") or {}).get("hash_salt_env") or "GRAPHKIT_ID_SALT"
+        try:
+            key = salt_from_env(env)
+        except InputError as exc:
+            raise InputError(f"{store}: the version was published with hashed ids; looking up the raw id "
+                             f"{node_id!r} needs its key: {exc}") from None
+        query_id = hash_ids([str(node_id)], key)[0].as_py()
+        kinds = kinds_of(query_id)
+    if not kinds:
+        raise StoreError(f"{store}: node id {node_id!r} is not in the embeddings"
+                         + (f" as kind {id_kind!r}" if id_kind else ""))
+    if len(kinds) > 1:
+        raise StoreError(f"{store}: node id {node_id!r} exists as kinds {', '.join(sorted(kinds))}; "
+                         "pass --id-kind")
+    return query_id, kinds[0]
 
 
 def spread_vectors(table: pa.Table, prefix: str = "emb_", column: str = "vector") -> pa.Table:

@@ -225,6 +225,61 @@ def child(lib: str, data: str, truth: str, k: int, out: str) -> None:
         "vectors_mb": x.nbytes / 2**20}))
 
 
+def graphkit_run(n: int, dim: int, clusters: int, top: int, queries: int, tmp: str) -> dict:
+    """The issue's targets through graphkit itself: publish ``n`` clustered vectors with ``neighbours = top``
+    (index and table written at publish), recall@10 of the table's first 10 ranks on seeded query nodes, then
+    `similar` with the index open (median of single queries) against the brute-force SQL."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from graphkit.neighbours import TABLE_FILE, NeighbourIndex
+    from graphkit.store import publish_embeddings, similar_nodes, version_row
+
+    x = clustered(n, dim, clusters, seed=0)
+    ids = pa.array(np.arange(n, dtype=np.int64))
+    store = Path(tmp, "store")
+    t0 = time.perf_counter()
+    publish_embeddings(store, ids, x, params={}, fingerprint=[], counts={}, timings={}, neighbours=top)
+    publish_s = time.perf_counter() - t0
+    figures = version_row(store, None)["counts"]["neighbours"]
+    folder = next(store.glob("versions/0*"))
+    unit_rows(x)
+    rng = np.random.default_rng(1)
+    qs = np.sort(rng.choice(n, size=min(queries, n), replace=False))
+    exact = exact_top(x, qs, 10)
+    pf = pq.ParquetFile(folder / TABLE_FILE)
+    got = np.empty((n, 10), np.int64)
+    start = 0
+    for b in pf.iter_batches(batch_size=top * 65536, columns=["neighbour_id", "rank"]):
+        nb = b.column(0).to_numpy().reshape(-1, top)
+        got[start:start + len(nb)] = nb[:, :10]
+        start += len(nb)
+    recall = float(np.mean([len(set(got[q]) & set(e)) / 10 for q, e in zip(qs, exact)]))
+    t1 = time.perf_counter()
+    index = NeighbourIndex(folder)
+    open_s = time.perf_counter() - t1
+    lat, lat_sql = [], []
+    for q in qs[:200]:
+        t1 = time.perf_counter()
+        similar_nodes(store, str(q), 10, index=index)
+        lat.append(time.perf_counter() - t1)
+    for q in qs[:5]:
+        t1 = time.perf_counter()
+        similar_nodes(store, str(q), 10, use_index=False)
+        lat_sql.append(time.perf_counter() - t1)
+    t1 = time.perf_counter()
+    parts = []
+    for q in qs[:50]:
+        t2 = time.perf_counter()
+        index.similar(int(q), 10)
+        parts.append(time.perf_counter() - t2)
+    return {"nodes": n, "dim": dim, "top": top, "publish_s": publish_s, "neighbours_s": figures["seconds"],
+            "rows": figures["rows"], "recall_at_10": recall, "index_open_s": open_s,
+            "similar_index_ms": 1000 * float(np.median(lat)), "similar_index_search_ms": 1000 * float(np.median(parts)),
+            "similar_sql_ms": 1000 * float(np.median(lat_sql)), "index_mb": (folder / "neighbours.index").stat().st_size / 2**20,
+            "table_mb": (folder / TABLE_FILE).stat().st_size / 2**20}
+
+
 def licence(lib: str) -> str:
     from importlib.metadata import PackageNotFoundError, metadata
 
@@ -280,6 +335,10 @@ def main(argv=None) -> None:
     ap.add_argument("--k", type=int, default=10)
     ap.add_argument("--libs", default="faiss,hnswlib,usearch,pynndescent")
     ap.add_argument("--json", default=None, help="also write the figures to this file")
+    ap.add_argument("--graphkit", type=int, default=0, metavar="N",
+                    help="instead: the issue's targets through graphkit at N clustered vectors (publish with "
+                         "[store] neighbours = --top, recall@10, similar with the index open)")
+    ap.add_argument("--top", type=int, default=50, help="K of --graphkit (default 50)")
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--data", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--truth", default=None, help=argparse.SUPPRESS)
@@ -289,6 +348,23 @@ def main(argv=None) -> None:
         child(args.child, args.data, args.truth, args.k, args.out)
         return
     print(f"load (uptime): {os.getloadavg()}; cores: {os.cpu_count()}; HNSW settings {HNSW}; {THREADS} threads")
+    if args.graphkit:
+        from graphkit.neighbours import IndexSettings
+
+        print(f"graphkit's index settings: {IndexSettings()}", flush=True)
+        with tempfile.TemporaryDirectory() as tmp:
+            r = graphkit_run(args.graphkit, args.dim, max(args.clusters, args.graphkit // 100), args.top,
+                             args.queries, tmp)
+        print(f"graphkit at {r['nodes']} x {r['dim']}, [store] neighbours = {r['top']}: the index and table of "
+              f"{r['rows']} rows in {r['neighbours_s']:.1f} s (the whole publish {r['publish_s']:.1f} s); "
+              f"recall@10 {r['recall_at_10']:.4f}; index {r['index_mb']:.0f} MB opened in "
+              f"{r['index_open_s']:.2f} s; similar with it open: {r['similar_index_ms']:.1f} ms "
+              f"(the index search alone {r['similar_index_search_ms']:.2f} ms), brute-force SQL "
+              f"{r['similar_sql_ms']:.0f} ms; table {r['table_mb']:.0f} MB")
+        print(f"load at the end: {os.getloadavg()}")
+        if args.json:
+            Path(args.json).write_text(json.dumps({"load_end": os.getloadavg(), "graphkit": r}, indent=1))
+        return
     runs = []
     with tempfile.TemporaryDirectory() as tmp:
         if args.planted_blocks:
