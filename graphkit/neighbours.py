@@ -56,11 +56,12 @@ TIE_MARGIN = 4
 @dataclass(frozen=True)
 class IndexSettings:
     """HNSW settings (faiss ``IndexHNSWFlat``): ``links`` per node and layer (``M``), the build's beam width
-    (``efConstruction``) and the search's (``efSearch``, at least the results asked for). The defaults reach
+    (``efConstruction``) and the search's (``efSearch``; at least twice the results asked for, see
+    :func:`search_width`). The defaults reach
     recall@10 >= 0.95 at 1M x 128 in the measurements of ``docs/neighbours.md``."""
 
     links: int = 16
-    build_width: int = 40
+    build_width: int = 100
     search_width: int = 64
 
 
@@ -180,20 +181,25 @@ def _order_rank(ids: pa.Table) -> np.ndarray:
 def _pick(labels: np.ndarray, scores: np.ndarray, own: np.ndarray, order_rank: np.ndarray,
           top: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """For each query row (``own``: its row, in label space), the first ``top`` results other than itself, by
-    score then tie order. ``labels`` -1 (fewer results) are dropped. Returns (query position, labels, scores),
-    flattened, query by query, best first."""
-    b, k = labels.shape
+    score then tie order. The index returns each row's results best first; only rows holding equal scores are
+    sorted again (by score, then tie order). ``labels`` -1 (fewer results) are dropped. Returns (query position,
+    labels, scores), flattened, query by query, best first."""
+    tied = np.flatnonzero((scores[:, 1:] == scores[:, :-1]).any(axis=1))
+    if len(tied):
+        sub = labels[tied]
+        order = np.lexsort((order_rank[np.where(sub >= 0, sub, 0)], -scores[tied]))  # along each row
+        labels, scores = labels.copy(), scores.copy()
+        labels[tied] = np.take_along_axis(sub, order, axis=1)
+        scores[tied] = np.take_along_axis(scores[tied], order, axis=1)
     valid = (labels >= 0) & (labels != own[:, None])
-    q = np.repeat(np.arange(b), k)[valid.ravel()]
-    lab = labels.ravel()[valid.ravel()]
-    sc = scores.ravel()[valid.ravel()]
-    order = np.lexsort((order_rank[lab], -sc, q))
-    q, lab, sc = q[order], lab[order], sc[order]
-    # position within the query's list: keep the first ``top``
-    starts = np.searchsorted(q, np.arange(b))
-    place = np.arange(len(q)) - starts[q]
-    keep = place < top
-    return q[keep], lab[keep], sc[keep]
+    keep = valid & (np.cumsum(valid, axis=1) <= top)
+    q, _ = np.nonzero(keep)
+    return q, labels[keep], scores[keep]
+
+
+def search_width(settings: IndexSettings, ask: int) -> int:
+    """The search's beam for ``ask`` results: ``settings.search_width``, and at least twice ``ask``."""
+    return max(settings.search_width, 2 * ask)
 
 
 def scope_rows(parquet: Path, kind: str | None) -> np.ndarray | None:
@@ -264,7 +270,7 @@ def version_neighbours(parquet: Path, out: Path, top: int, *, kind: str | None =
     ask = min(n, top + 1 + TIE_MARGIN)
     written = 0
     with _faiss_threads(threads), atomic_output(out) as tmp:
-        index.hnsw.efSearch = max(settings.search_width, ask)
+        index.hnsw.efSearch = search_width(settings, ask)
         with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
             offset = 0  # label of the block's first row
             for _, x in unit_blocks(parquet, rows, block=QUERY_ROWS):
@@ -289,7 +295,8 @@ def write_neighbours(folder: Path, top: int, *, settings: IndexSettings = IndexS
                      threads: int | None = None) -> dict:
     """At publish: build the index of the version in ``folder`` (not yet renamed into place), save it as
     :data:`INDEX_FILE` and write :data:`TABLE_FILE`. A version with ``top`` or fewer nodes gives each node all
-    the others. Returns :func:`version_neighbours`' dict."""
+    the others. Returns :func:`version_neighbours`' dict, with ``seconds`` the whole: index, its file and the
+    table."""
     import faiss
 
     folder = Path(folder)
@@ -305,7 +312,8 @@ def write_neighbours(folder: Path, top: int, *, settings: IndexSettings = IndexS
     result = version_neighbours(parquet, folder / TABLE_FILE, min(top, n), index=index, settings=settings,
                                 threads=threads) if n > 1 else _empty_table(parquet, folder / TABLE_FILE)
     fsync_file(folder / TABLE_FILE)
-    return {**result, "top": top, "build_seconds": round(build_s, 3)}
+    return {**result, "top": top, "build_seconds": round(build_s, 3),
+            "seconds": round(time.perf_counter() - t0, 3)}
 
 
 def _empty_table(parquet: Path, out: Path) -> dict:
@@ -386,7 +394,7 @@ class NeighbourIndex:
         n = self.index.ntotal
         ask = min(n, top + 1 + TIE_MARGIN)
         while True:
-            self.index.hnsw.efSearch = max(self.settings.search_width, ask)
+            self.index.hnsw.efSearch = search_width(self.settings, ask)
             scores, labels = self.index.search(q, ask)
             keep = (labels[0] >= 0) & (labels[0] != row)
             lab, sc = labels[0][keep], scores[0][keep]

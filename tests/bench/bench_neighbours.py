@@ -36,6 +36,8 @@ import numpy as np
 #: Index settings of the HNSW libraries: graph degree, build beam, search beam (the same for the three).
 HNSW = {"M": 16, "ef_construction": 100, "ef_search": 64}
 THREADS = 2
+#: faiss only: search widths tried on the same index after the default one (``--search-widths``).
+WIDTHS: list[int] = []
 
 
 def unit_rows(x: np.ndarray, block: int = 65536) -> np.ndarray:
@@ -117,6 +119,7 @@ def _faiss(x, k):
     idx.hnsw.efSearch = max(HNSW["ef_search"], k + 1)
 
     def search(q, kk):
+        idx.hnsw.efSearch = max(HNSW["ef_search"], kk)
         return idx.search(q, kk)[1]
 
     def single(q):
@@ -199,20 +202,27 @@ def child(lib: str, data: str, truth: str, k: int, out: str) -> None:
     except ImportError as exc:
         Path(out).write_text(json.dumps({"lib": lib, "error": f"not installed ({exc})"}))
         return
-    t0 = time.perf_counter()
-    found = np.empty((len(x), k), np.int64)
-    batch = 20_000
-    for s in range(0, len(x), batch):
-        rows = np.arange(s, min(len(x), s + batch))
-        got = search(x[rows], k + 1, rows) if lib == "pynndescent" else search(x[rows], k + 1)
-        got = np.asarray(got, np.int64)
-        keep = got != rows[:, None]
-        # drop the node itself (or, when the index missed it, the last of the k + 1)
-        keep[keep.all(axis=1), -1] = False
-        found[rows] = got[keep].reshape(len(rows), k)
-    all_s = time.perf_counter() - t0
-    hits = [len(set(found[q]) & set(e)) for q, e in zip(queries, exact)]
-    recall = float(np.sum(hits)) / (len(queries) * k)
+    def all_nodes():
+        t0 = time.perf_counter()
+        found = np.empty((len(x), k), np.int64)
+        batch = 20_000
+        for s in range(0, len(x), batch):
+            rows = np.arange(s, min(len(x), s + batch))
+            got = search(x[rows], k + 1, rows) if lib == "pynndescent" else search(x[rows], k + 1)
+            got = np.asarray(got, np.int64)
+            keep = got != rows[:, None]
+            # drop the node itself (or, when the index missed it, the last of the k + 1)
+            keep[keep.all(axis=1), -1] = False
+            found[rows] = got[keep].reshape(len(rows), k)
+        hits = [len(set(found[q]) & set(e)) for q, e in zip(queries, exact)]
+        return float(np.sum(hits)) / (len(queries) * k), time.perf_counter() - t0
+
+    recall, all_s = all_nodes()
+    widths = {}
+    if lib == "faiss" and WIDTHS:  # the same index searched with wider beams
+        for w in WIDTHS:
+            HNSW["ef_search"] = w
+            widths[w] = all_nodes()
     lat = []
     for q in queries[:300]:
         t1 = time.perf_counter()
@@ -221,7 +231,7 @@ def child(lib: str, data: str, truth: str, k: int, out: str) -> None:
     peak = memory_mb("VmHWM")
     Path(out).write_text(json.dumps({
         "lib": lib, "recall": recall, "build_s": build, "all_nodes_s": all_s, "prepare_s": prepare,
-        "single_ms": 1000 * float(np.median(lat)), "peak_mb_over_vectors": peak - base,
+        "single_ms": 1000 * float(np.median(lat)), "peak_mb_over_vectors": peak - base, "widths": widths,
         "vectors_mb": x.nbytes / 2**20}))
 
 
@@ -307,7 +317,8 @@ def run_data(name, x, args, tmp):
     for lib in args.libs.split(","):
         out = Path(tmp, f"{name}-{lib}.json")
         cmd = [sys.executable, __file__, "--child", lib, "--data", str(data), "--truth", str(truth),
-               "--k", str(args.k), "--out", str(out)]
+               "--k", str(args.k), "--out", str(out), "--build-width", str(HNSW["ef_construction"]),
+               "--links", str(HNSW["M"]), "--search-widths", ",".join(map(str, WIDTHS))]
         t0 = time.perf_counter()
         proc = subprocess.run(cmd, capture_output=True, text=True)
         if proc.returncode != 0 or not out.exists():
@@ -322,6 +333,8 @@ def run_data(name, x, args, tmp):
         extra = f" (+ prepare {r['prepare_s']:.1f} s for single queries)" if r.get("prepare_s") else ""
         print(f"{lib:<12}{r['recall']:>8.4f}{r['build_s']:>9.1f}{r['all_nodes_s']:>8.1f}{r['single_ms']:>11.2f}"
               f"{r['peak_mb_over_vectors']:>9.0f}  {licence(lib)}{extra}", flush=True)
+        for w, (rec, secs) in (r.get("widths") or {}).items():
+            print(f"{'  ef ' + str(w):<12}{rec:>8.4f}{'':>9}{secs:>8.1f}", flush=True)
     return {"data": name, "nodes": len(x), "dim": int(x.shape[1]), "exact_sample_s": exact_s, "results": results}
 
 
@@ -339,11 +352,16 @@ def main(argv=None) -> None:
                     help="instead: the issue's targets through graphkit at N clustered vectors (publish with "
                          "[store] neighbours = --top, recall@10, similar with the index open)")
     ap.add_argument("--top", type=int, default=50, help="K of --graphkit (default 50)")
+    ap.add_argument("--links", type=int, default=HNSW["M"], help="HNSW links per node (M)")
+    ap.add_argument("--build-width", type=int, default=HNSW["ef_construction"], help="HNSW efConstruction")
+    ap.add_argument("--search-widths", default="", help="faiss: also search with these efSearch values")
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--data", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--truth", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--out", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    HNSW.update(M=args.links, ef_construction=args.build_width)
+    WIDTHS[:] = [int(w) for w in args.search_widths.split(",") if w]
     if args.child:
         child(args.child, args.data, args.truth, args.k, args.out)
         return
