@@ -454,8 +454,9 @@ def cmd_sql(args) -> int:
     out = output_file(args.out, formats={Path(args.out).suffix.lower(): args.format}, store=args.store)[0] \
         if args.out is not None else None
     if _SHOW_TABLES.fullmatch(query):
-        # the connection's temporary views shadow the catalog's views of the same names: list each name once
-        query = "select distinct name from (show tables) order by name"
+        # the connection's temporary views shadow the catalog's views of the same names: list each name once;
+        # the files `connect` registers through Arrow (named `_...`) are its plumbing, read through the views
+        query = "select distinct name from (show tables) where not starts_with(name, '_') order by name"
     con = connect(args.store)
     try:
         try:

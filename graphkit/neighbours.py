@@ -65,13 +65,13 @@ class IndexSettings:
     search_width: int = 64
 
 
-#: The neighbour table's columns (node ids keep the version's own id type).
 def neighbour_schema(id_type: pa.DataType) -> pa.Schema:
     """Schema of the table: ``node_id, node_kind, neighbour_id, neighbour_kind, rank, similarity``."""
     return pa.schema([("node_id", id_type), ("node_kind", pa.string()), ("neighbour_id", id_type),
                       ("neighbour_kind", pa.string()), ("rank", pa.int32()), ("similarity", pa.float32())])
 
 
+#: The neighbour table's columns for integer node ids (node ids keep the version's own id type).
 NEIGHBOUR_SCHEMA = neighbour_schema(pa.int64())
 
 

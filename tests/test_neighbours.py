@@ -228,7 +228,7 @@ def test_missing_store_or_version_exits_2(tmp_path, capsys):
 
 # ---------------------------------------------------------------------------------------------- publish and view
 
-def test_publish_writes_the_table_the_index_and_the_view(tmp_path):
+def test_publish_writes_the_table_the_index_and_the_view(tmp_path, capsys):
     rng = np.random.default_rng(4)
     ids = np.arange(100, 160, dtype=np.int64)
     vecs = rng.normal(size=(60, 8)).astype(np.float32)
@@ -255,6 +255,9 @@ def test_publish_writes_the_table_the_index_and_the_view(tmp_path):
             con.execute("select count(*) from neighbours").fetchall()
     finally:
         con.close()
+    assert cli.main(["sql", str(tmp_path), "show tables"]) == 0
+    assert capsys.readouterr().out.splitlines()[2:-1] == ["embeddings", "embeddings_v000001", "embeddings_v000002",
+                                                          "neighbours", "neighbours_v000002", "versions"]
     # the catalog's own view, for plain DuckDB readers
     raw = duckdb.connect(str(tmp_path / "catalog.duckdb"), read_only=True)
     try:
