@@ -136,9 +136,12 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
     if int(top) < 1:
         raise InputError(f"--top must be >= 1, got {top}")
     if use_index and index is None:
-        row = version_row(Path(store), version)
-        folder = version_files(Path(store), row["path"])[0].parent
-        if NeighbourIndex.exists(folder):
+        try:
+            row = version_row(Path(store), version)
+        except StoreError:  # no such store or version: `connect` below says why, in its words
+            row = None
+        folder = version_files(Path(store), row["path"])[0].parent if row else None
+        if folder is not None and NeighbourIndex.exists(folder):
             index = NeighbourIndex(folder, params=row.get("params"))
     if use_index and index is not None:  # no SQL at all: the index holds the ids and the vectors
         query_id, query_kind = _query_node(store, node_id, id_kind, salt_env, index.params,
