@@ -18,6 +18,10 @@ Run by hand (nice it on the shared machine):
     nice -n 10 .venv/bin/python tests/bench/bench_neighbours.py [--nodes 200000] [--libs faiss,hnswlib,usearch,pynndescent]
 
 Each library is imported only in its own child process; a library that is not installed is reported as such.
+
+``--graphkit N`` measures the issue's targets through graphkit itself instead (publish N clustered vectors with
+``[store] neighbours = --top``, recall@10 of the table, ``similar`` with the index open; see ``graphkit_run``).
+``--build-width``, ``--links`` and ``--search-widths`` change the HNSW settings of the side-by-side runs.
 """
 
 from __future__ import annotations
