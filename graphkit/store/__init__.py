@@ -7,6 +7,8 @@ Layout of a store folder::
     versions/000001/embeddings.parquet  node_id (the input's own type), node_kind, provisional, vector
                                         (fixed-size list of float32): the table downstream jobs read
     versions/000001/embeddings.duckdb   the same rows as a native DuckDB table, attached by `connect` for fast SQL
+    versions/000001/neighbours.parquet  with `[store] neighbours = K`: every node's K nearest (view `neighbours`)
+    versions/000001/neighbours.index    and their index (faiss HNSW), which `similar` answers from
     work/                               scratch of runs in progress (ingest, graph, walk corpus)
 
 The parts: :mod:`.catalog` (versions, publish, failed runs, retention, pins, promote), :mod:`.align` (Procrustes

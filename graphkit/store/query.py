@@ -30,7 +30,9 @@ def connect(store, *, version: int | None = None) -> duckdb.DuckDBPyConnection:
     """Open a store's catalog read-only, unable to change or read any file.
 
     Views: ``embeddings`` (the current version, or ``version``), ``versions``, and ``embeddings_vNNNNNN`` for
-    every kept complete version; macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k, kind :=,
+    every kept complete version; ``neighbours`` and ``neighbours_vNNNNNN`` likewise for the versions published
+    with ``[store] neighbours`` (read through Arrow; on a ``version`` without a table, reading ``neighbours``
+    fails saying so); macros ``cosine_similarity(a, b)``, ``nearest_neighbours(node_id, k, kind :=,
     id_kind :=)`` and ``pair_similarity(a_id, b_id)`` (``sql/macros.sql``, made afresh on the connection). Each version's native DuckDB copy is attached read-only, so the views scan
     DuckDB's own storage instead of Parquet (a top-10 query over a million vectors is about ten times faster).
 
@@ -116,8 +118,8 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
     kind, ties are broken by node id then kind. A version published with ``[store] neighbours`` has a neighbour
     index (:class:`graphkit.neighbours.NeighbourIndex`): the answer then comes from it, approximate, in the same
     order and format, unless ``use_index`` is false; ``index`` is that index already open (for many queries).
-    With ``kind`` too rare among the index's nearest results, the macro answers. ``id_kind`` picks the query node when its id exists under several
-    kinds. In a version published with hashed ids (lineage ``hashed_ids``) a raw id is hashed with the key in
+    With ``kind`` too rare among the index's nearest results, the macro answers. ``id_kind`` picks the query node
+    when its id exists under several kinds. In a version published with hashed ids (lineage ``hashed_ids``) a raw id is hashed with the key in
     environment variable ``salt_env`` (default: the run's ``[input] hash_salt_env``, else ``GRAPHKIT_ID_SALT``);
     a pseudonym given as is is used as is. The results are the store's ids (pseudonyms in a hashed store).
 

@@ -15,7 +15,8 @@ Data sets:
 
 Run by hand (nice it on the shared machine):
 
-    nice -n 10 .venv/bin/python tests/bench/bench_neighbours.py [--nodes 200000] [--libs faiss,hnswlib,usearch,pynndescent]
+    nice -n 10 .venv/bin/python tests/bench/bench_neighbours.py [--nodes 200000] \
+        [--libs faiss,hnswlib,usearch,pynndescent]
 
 Each library is imported only in its own child process; a library that is not installed is reported as such.
 
@@ -292,8 +293,10 @@ def graphkit_run(n: int, dim: int, clusters: int, top: int, queries: int, tmp: s
     return {"nodes": n, "dim": dim, "top": top, "publish_s": publish_s, "publish_cpu_s": publish_cpu_s,
             "neighbours_s": figures["seconds"],
             "rows": figures["rows"], "recall_at_10": recall, "index_open_s": open_s,
-            "similar_index_ms": 1000 * float(np.median(lat)), "similar_index_search_ms": 1000 * float(np.median(parts)),
-            "similar_sql_ms": 1000 * float(np.median(lat_sql)), "index_mb": (folder / "neighbours.index").stat().st_size / 2**20,
+            "similar_index_ms": 1000 * float(np.median(lat)),
+            "similar_index_search_ms": 1000 * float(np.median(parts)),
+            "similar_sql_ms": 1000 * float(np.median(lat_sql)),
+            "index_mb": (folder / "neighbours.index").stat().st_size / 2**20,
             "table_mb": (folder / TABLE_FILE).stat().st_size / 2**20}
 
 
