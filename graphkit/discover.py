@@ -173,7 +173,8 @@ def _partition_type(values: list[str]) -> pa.DataType:
 
 class _LocalWithZstd(pfs.FileSystemHandler):
     """The local file system, but ``*.zst`` files open decompressed: Arrow's dataset reader recognises the
-    ``.zstd`` ending only and would read a ``.zst`` file's compressed bytes as text."""
+    ``.zstd`` ending only and would read a ``.zst`` file's compressed bytes as text. (Its CSV reader reads a file
+    front to back, so a decompressing stream behind a file handle serves it.)"""
 
     def __init__(self):
         self.fs = pfs.LocalFileSystem()
@@ -191,10 +192,13 @@ class _LocalWithZstd(pfs.FileSystemHandler):
         return self.fs.get_file_info(selector)
 
     def open_input_stream(self, path):
-        stream = self.fs.open_input_stream(path)
-        return pa.CompressedInputStream(stream, "zstd") if path.lower().endswith(".zst") else stream
+        if path.lower().endswith(".zst"):
+            return self.fs.open_input_stream(path, compression="zstd")
+        return self.fs.open_input_stream(path, compression=None)  # Arrow decompresses the endings it knows
 
     def open_input_file(self, path):
+        if path.lower().endswith(".zst"):
+            return pa.PythonFile(self.open_input_stream(path), mode="r")
         return self.fs.open_input_file(path)
 
     def _read_only(self, *_a, **_k):  # pragma: no cover - discovery never writes
@@ -262,7 +266,8 @@ class Discovery:
                 for _ in self.dataset(types, [f]).to_batches():
                     pass
             except (pa.ArrowInvalid, pa.ArrowNotImplementedError, OSError, UnicodeDecodeError) as exc:
-                return text_row_error(f, exc, self.csv) or f"{f}: cannot read it ({_first_line(exc)})"
+                return (text_row_error(f, exc, self.csv, self.files[0])
+                        or f"{f}: cannot read it ({_first_line(exc)})")
         return None
 
 
@@ -288,21 +293,25 @@ def _first_line(exc) -> str:
     return text.splitlines()[0] if text else type(exc).__name__
 
 
-def text_row_error(file: Path, exc, options: CsvOptions) -> str | None:
-    """The one-line message for a text file whose rows do not have the header's number of fields, or None when
-    ``exc`` is about something else."""
+def text_row_error(file: Path, exc, options: CsvOptions, first_file: Path | None = None) -> str | None:
+    """The one-line message for a text file whose rows do not have the header's number of fields (without a header:
+    line 1 of ``first_file``, the table's first file), or None when ``exc`` is about something else."""
     m = _ARROW_ROW.search(str(exc))
     if not m:
         return None
     line, expected, got = (int(x) for x in m.groups())
-    first = "the header row (line 1)" if options.header else "line 1"
-    hint = ("; fix the header or set [input] csv_header = false if the file has none" if options.header
-            else "; every line needs the same number of fields")
+    if options.header:
+        first = "the header row (line 1)"
+        hint = "; fix the header or set [input] csv_header = false if the file has none"
+    else:
+        first = "line 1" if first_file is None or first_file == file else f"line 1 of {first_file}"
+        hint = "; every line of a table without a header row needs the same number of fields"
     return (f"{file}: line {line} has {got} fields but {first} has {expected} (delimiter "
             f"{options.delimiter or 'by the file ending'!r}){hint}")
 
 
-def _file_schema(f: Path, fmt: str, csv: CsvOptions, fs, width: int | None) -> tuple[pa.Schema, int | None]:
+def _file_schema(f: Path, fmt: str, csv: CsvOptions, fs, width: int | None,
+                 first_file: Path | None = None) -> tuple[pa.Schema, int | None]:
     """One file's own columns (a Parquet footer; a text file's first block) and its row count (Parquet only)."""
     if fmt == "parquet":
         try:
@@ -315,7 +324,7 @@ def _file_schema(f: Path, fmt: str, csv: CsvOptions, fs, width: int | None) -> t
     try:
         return fragment.physical_schema, None
     except (pa.ArrowInvalid, OSError, UnicodeDecodeError) as exc:
-        message = text_row_error(f, exc, csv)
+        message = text_row_error(f, exc, csv, first_file)
         if message:
             raise EdgeTableError(message) from None
         raise EdgeTableError(f"{f}: not a readable {fmt.upper()} file ({_first_line(exc)})") from None
@@ -379,7 +388,7 @@ def discover(path: str, csv: CsvOptions = CsvOptions()) -> Discovery:
         width = len(schema)
     columns, n_rows = [], 0
     for f in files:
-        schema, rows = _file_schema(f, fmt, csv, fs, width)
+        schema, rows = _file_schema(f, fmt, csv, fs, width, files[0])
         cols = {name: schema.field(name).type for name in schema.names}
         for k, t in partitions.items():
             if k in cols:
