@@ -12,9 +12,10 @@ they become columns of every row below them, typed from all their values (intege
 as date32, else strings; ``__HIVE_DEFAULT_PARTITION__`` is null), and go through the same column and type checks
 as the files' own columns.
 
-The rows are read through :mod:`pyarrow.dataset` (:meth:`Discovery.dataset`), which DuckDB scans directly; CSV
-files are parsed by Arrow with :class:`CsvOptions` (header row or not, delimiter), so that the checks and the ingest
-see the same columns and types. A discovery is done once per process and input: called again while the listing,
+DuckDB reads exactly the files listed here. Text files go to it as the :mod:`pyarrow.dataset` of
+:meth:`Discovery.dataset`, parsed by Arrow with :class:`CsvOptions` (header row or not, delimiter), so that the
+checks and the ingest see the same columns and types; Parquet files go to DuckDB's own reader (faster, and within
+its memory limit), with the partition values typed here joined by file (:meth:`Discovery.partition_table`). A discovery is done once per process and input: called again while the listing,
 sizes and modification times are unchanged, :func:`discover` returns it without reading a file.
 """
 
@@ -254,6 +255,15 @@ class Discovery:
         return ds.dataset([str(f.resolve()) for f in (self.files if files is None else files)], schema=schema,
                           format=self.file_format(), filesystem=self.filesystem(), partitioning=partitioning,
                           partition_base_dir=str(self.root.resolve()))
+
+    def partition_table(self, files: list[str]) -> pa.Table:
+        """Each file's partition values, typed: column ``__graphkit_file`` (the names in ``files``, in the order of
+        :attr:`files`) and one column per partition key (null where a file's folders do not name it)."""
+        values = _partition_values(self.files, self.root)
+        cols = {"__graphkit_file": pa.array(files, pa.string())}
+        for k, t in self.partitions.items():
+            cols[k] = pa.array([v.get(k) for v in values], pa.string()).cast(t)
+        return pa.table(cols)
 
     def locate_error(self, types: dict[str, pa.DataType]) -> str | None:
         """After a scan of text files failed: the message naming the first file that fails alone (and its line,

@@ -23,7 +23,7 @@ from .errors import EdgeTableError, GraphDataWarning
 from .faults import fault_point
 from .graph import AdjacencyArrays
 from .io import digest, fingerprint_files, write_json_atomic
-from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
+from .sql import bind, inline, load_sql, quote_ident, sql_literal, work_connection
 
 __all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "validate_edge_tables", "ingest_tables",
            "ingest_edges"]
@@ -210,17 +210,31 @@ def _fetch_adjacency(result, n_nodes: int, n_entries: int, weighted: bool):
     return indptr, indices, wts
 
 
+def _table_rows(con, t: EdgeTable, found: Discovery, id_type: str, keep: list):
+    """A relation over one table's rows: DuckDB's own reader over the discovered Parquet files (its speed and its
+    memory limit), joined to the partition values discovery typed; text files as the Arrow dataset discovery
+    parses them. Objects the relation reads from are appended to ``keep``."""
+    if found.is_text:
+        dataset = found.dataset(_scan_types(t, found, id_type))
+        keep.append(dataset)
+        return con.from_arrow(dataset)
+    names = [str(f.resolve()) for f in found.files]
+    rel = con.sql(inline(load_sql("edge_files"), {"files": names}))
+    if not found.partitions:
+        return rel
+    values = found.partition_table(names)
+    keep.append(values)
+    return rel.set_alias("f").join(con.from_arrow(values).set_alias("p"),
+                                   "f.__graphkit_file = p.__graphkit_file")
+
+
 def _raw_view(con, tables: list[EdgeTable], id_type: str) -> list:
     """Register ``raw_edges(src_kind, src, dst_kind, dst, weight, ts, table_path)``: every table projected and
-    stacked, each scanned by DuckDB as the Arrow dataset of its discovered files. Returns the datasets, which
-    must stay referenced while the connection uses the view."""
+    stacked. Returns the Arrow objects the view reads from, which must stay referenced while it is used."""
     id_sql = "bigint" if id_type == "integer" else "varchar"
     parts, datasets = [], []
     for t in tables:
-        found = _discover(t)
-        dataset = found.dataset(_scan_types(t, found, id_type))
-        datasets.append(dataset)
-        rel = con.from_arrow(dataset)
+        rel = _table_rows(con, t, _discover(t), id_type, datasets)
         w = f"{quote_ident(t.weight)}::double" if t.weight else "1.0::double"
         ts = f"{quote_ident(t.timestamp)}::timestamptz" if t.timestamp else "null::timestamptz"
         parts.append(rel.project(

@@ -421,3 +421,73 @@ def test_discovery_runs_once_per_process_while_the_files_are_unchanged(tmp_path,
     pq.write_table(pa.table({"customer": ["c"], "merchant": ["d"], "amount": [1.0]}), root / "p1.parquet")
     assert validate_edge_tables(table)["counts"]["rows"] == 3
     assert reads == ["p0.parquet", "p0.parquet", "p1.parquet"]
+
+
+@pytest.mark.parametrize("ending, codec", [(".gz", "gzip"), (".bz2", "bz2"), (".lz4", "lz4"), (".zst", "zstd"),
+                                           (".zstd", "zstd")])
+def test_every_compression_ending_of_text_files(tmp_path, ending, codec):
+    path = tmp_path / f"payments.tsv{ending}"
+    with pa.CompressedOutputStream(str(path), codec) as f:
+        f.write(_text(PAYMENTS, delimiter="\t").encode())
+    _ingest(tmp_path, path)
+    _assert_same_graph(tmp_path / "out", PAYMENTS)
+
+
+def test_only_an_empty_field_is_null_and_other_names_are_parquet(tmp_path):
+    """Ids such as NA or NULL are ids (an account may be called that); a file without a known ending is Parquet,
+    as Hive writes them, and a stray text file among them is an error naming it."""
+    path = tmp_path / "p.csv"
+    path.write_text("customer,merchant,amount\nNA,NULL,1.0\nnan,shop-a,2.0\n,shop-b,3.0\n")
+    info = ingest_tables([EdgeTable(str(path), "customer", "merchant", "amount")], tmp_path / "out",
+                         drop_null_ids=True)
+    assert info["counts"]["dropped_null_ids"] == 1
+    _assert_same_graph(tmp_path / "out", [("NA", "NULL", 1.0), ("nan", "shop-a", 2.0)])
+
+    hive = tmp_path / "warehouse"
+    hive.mkdir()
+    pq.write_table(pa.table({"customer": ["cus-01"], "merchant": ["shop-a"], "amount": [1.0]}), hive / "000000_0")
+    _ingest(tmp_path, hive, name="hive")
+    _assert_same_graph(tmp_path / "hive", [("cus-01", "shop-a", 1.0)])
+    (hive / "README.md").write_text("nightly export of the payments table\n")
+    with pytest.raises(EdgeTableError, match=r"README\.md: not a readable Parquet file .*read as Parquet"):
+        _ingest(tmp_path, hive, name="hive2")
+
+
+def test_partition_nulls_and_clashing_names(tmp_path):
+    root = tmp_path / "edges"
+    for shop in ("shop-a", "__HIVE_DEFAULT_PARTITION__"):
+        (root / f"shop={shop}").mkdir(parents=True)
+        pq.write_table(pa.table({"customer": ["cus-01", "cus-02"], "amount": [1.0, 2.0]}),
+                       root / f"shop={shop}" / "part-0.parquet")
+    info = ingest_tables([EdgeTable(str(root), "customer", "shop", "amount")], tmp_path / "out", drop_null_ids=True)
+    assert info["counts"]["dropped_null_ids"] == 2  # Hive's name for a null partition value
+    _assert_same_graph(tmp_path / "out", [("cus-01", "shop-a", 1.0), ("cus-02", "shop-a", 2.0)])
+    pq.write_table(pa.table({"customer": ["cus-03"], "shop": ["shop-z"], "amount": [1.0]}),
+                   root / "shop=shop-a" / "part-1.parquet")
+    with pytest.raises(EdgeTableError, match=r"part-1\.parquet: column 'shop' is both in the file and a partition"):
+        validate_edge_tables([EdgeTable(str(root), "customer", "shop", "amount")])
+
+
+def test_paths_with_quotes_and_partitions_reach_duckdb_intact(tmp_path):
+    """The Parquet file list is written into the view's SQL text (graphkit.sql.inline): a quote in a folder name
+    must stay a quote."""
+    root = tmp_path / "o'hara's exports"
+    (root / "day=2026-11-30").mkdir(parents=True)
+    pq.write_table(pa.table({"customer": [s for s, _, _ in PAYMENTS], "merchant": [t for _, t, _ in PAYMENTS],
+                             "amount": [w for _, _, w in PAYMENTS]}), root / "day=2026-11-30" / "it's.parquet")
+    info = _ingest(tmp_path, root, timestamp="day")
+    assert info["counts"]["rows"] == len(PAYMENTS)
+    _assert_same_graph(tmp_path / "out", PAYMENTS)
+
+
+def test_text_files_under_partition_folders(tmp_path):
+    root = tmp_path / "edges"
+    for s, t, w in PAYMENTS:
+        (root / f"shop={t}").mkdir(parents=True, exist_ok=True)
+        with open(root / f"shop={t}" / "part.csv", "a") as f:
+            f.write(f"{s};{w}\n")
+    found = gd.discover(str(root), gd.CsvOptions(header=False, delimiter=";"))
+    assert found.partitions == {"shop": pa.string()} and list(found.columns[0]) == ["column_1", "column_2", "shop"]
+    _ingest(tmp_path, root, source="column_1", target="shop", weight="column_2", csv_header=False,
+            csv_delimiter=";")
+    _assert_same_graph(tmp_path / "out", PAYMENTS)

@@ -14,6 +14,7 @@ It only uses the public functions, so the same script times an older commit chec
 from __future__ import annotations
 
 import argparse
+import resource
 import statistics
 import tempfile
 import time
@@ -61,12 +62,16 @@ def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--edges", type=int, default=2_000_000)
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--input", choices=("file", "hive", "both"), default="both",
+                    help="which input to time (one per process gives a peak memory figure for it alone)")
     args = ap.parse_args(argv)
     print(f"graphkit from {Path(graphkit.__file__).parent}")
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         one, parts = write_inputs(tmp, args.edges)
-        for name, path in (("one file", one), ("hive folder", parts)):
+        inputs = {"file": [("one file", one)], "hive": [("hive folder", parts)],
+                  "both": [("one file", one), ("hive folder", parts)]}[args.input]
+        for name, path in inputs:
             tables = [EdgeTable(str(path), "sender", "receiver", "amount")]
             pre = timed(lambda: validate_edge_tables(tables), args.repeat)
 
@@ -78,6 +83,8 @@ def main(argv=None) -> None:
             ing = timed(ingest, args.repeat)
             print(f"{name:12s} {args.edges:,} edges: preflight best {min(pre):.2f} s (median "
                   f"{statistics.median(pre):.2f}), ingest best {min(ing):.2f} s (median {statistics.median(ing):.2f})")
+        # the process's peak, input generation included (about the same for every commit timed)
+        print(f"peak RSS of the process: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MiB")
 
 
 if __name__ == "__main__":
