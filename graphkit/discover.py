@@ -7,8 +7,9 @@ compressed (``.gz``, ``.bz2``, ``.lz4``, ``.zst``, ``.zstd``); any other name is
 Parquet files named ``000000_0``), so a stray file is an error naming it, never silently left out. One table has
 one format: a folder that mixes them is an error naming the folder.
 
-Folders named ``key=value`` between the table's folder (or a glob's fixed part) and a file are hive partitions:
-they become columns of every row below them, typed from all their values (integers as int64, ``YYYY-MM-DD`` dates
+Folders named ``key=value`` between the table's folder (or a glob's fixed part) and a file are hive partitions,
+and so are those the path itself ends in (``edges/day=2026-11-30/``, ``edges/day=2026-11-30/*.parquet`` and a
+file in that folder keep their ``day``): they become columns of every row below them, typed from all their values (integers as int64, ``YYYY-MM-DD`` dates
 as date32, else strings; ``__HIVE_DEFAULT_PARTITION__`` is null), and go through the same column and type checks
 as the files' own columns.
 
@@ -111,6 +112,13 @@ def _glob_root(pattern: str) -> Path:
     return Path(*fixed) if fixed else Path(".")
 
 
+def _above_partitions(folder: Path) -> Path:
+    """``folder`` without its trailing ``key=value`` folders: a path inside a partition keeps that column."""
+    while _HIVE_SEGMENT.match(folder.name) and folder != folder.parent:
+        folder = folder.parent
+    return folder
+
+
 def list_edge_files(path: str) -> tuple[list[Path], Path]:
     """The files an edge table's ``path`` names, sorted, and the folder their partition folders start from.
 
@@ -121,7 +129,7 @@ def list_edge_files(path: str) -> tuple[list[Path], Path]:
     """
     p = Path(path)
     if any(c in path for c in _GLOB_CHARS):
-        root = _glob_root(path)
+        root = _above_partitions(_glob_root(path))
         files = set()
         for m in _glob.glob(path, recursive=True):
             m = Path(m)
@@ -139,10 +147,10 @@ def list_edge_files(path: str) -> tuple[list[Path], Path]:
         if not files:
             raise EdgeTableError(f"{path}: folder holds no edge files (files and folders starting with . or _ "
                                  "are skipped)")
-        return files, p
+        return files, _above_partitions(p)
     if not p.exists():
         raise EdgeTableError(f"{path}: file not found")
-    return [p], p.parent
+    return [p], _above_partitions(p.parent)
 
 
 def _partition_values(files: list[Path], root: Path) -> list[dict[str, str | None]]:

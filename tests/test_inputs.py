@@ -491,3 +491,18 @@ def test_text_files_under_partition_folders(tmp_path):
     _ingest(tmp_path, root, source="column_1", target="shop", weight="column_2", csv_header=False,
             csv_delimiter=";")
     _assert_same_graph(tmp_path / "out", PAYMENTS)
+
+
+def test_a_path_inside_a_partition_keeps_its_column(tmp_path):
+    day = tmp_path / "edges" / "day=2026-11-30"
+    day.mkdir(parents=True)
+    pq.write_table(pa.table({"customer": ["cus-01"], "merchant": ["shop-a"], "amount": [1.0]}), day / "p.parquet")
+    for path in (day, day / "*.parquet", day / "p.parquet"):
+        found = gd.discover(str(path))
+        assert found.partitions == {"day": pa.date32()}, path
+        assert found.columns[0]["day"] == pa.date32()
+    until = datetime(2026, 12, 1, tzinfo=timezone.utc)
+    info = ingest_tables([EdgeTable(str(day / "p.parquet"), "customer", "merchant", "amount", timestamp="day")],
+                         tmp_path / "out", window={"until": until, "as_of": until, "half_life_days": 1.0})
+    g = AdjacencyArrays.load(tmp_path / "out" / "graph")
+    assert info["counts"]["rows"] == 1 and float(g.weights[0]) == pytest.approx(0.5, rel=1e-5)  # one day old
