@@ -506,3 +506,26 @@ def test_a_path_inside_a_partition_keeps_its_column(tmp_path):
                          tmp_path / "out", window={"until": until, "as_of": until, "half_life_days": 1.0})
     g = AdjacencyArrays.load(tmp_path / "out" / "graph")
     assert info["counts"]["rows"] == 1 and float(g.weights[0]) == pytest.approx(0.5, rel=1e-5)  # one day old
+
+
+def test_stage_keys_follow_the_discovered_files(tmp_path):
+    """A rerun over the same folder resumes (same ingest folder); a new file, or a new CSV option, is a new ingest.
+    Files discovery skips do not count."""
+    from graphkit.config import load_config
+    from graphkit.pipeline import plan_run
+
+    root = tmp_path / "edges"
+    root.mkdir()
+    (root / "mon.csv").write_text(_text(PAYMENTS[:3]))
+    (tmp_path / "c.toml").write_text('[input]\nedges = "edges"\nsource = "customer"\ntarget = "merchant"\n'
+                                     'weight = "amount"\n[store]\npath = "st"\n')
+    cfg = load_config(tmp_path / "c.toml")
+    first = plan_run(cfg)
+    assert [Path(fp["path"]).name for fp in first["fingerprint"]] == ["mon.csv"]
+    (root / "_SUCCESS").write_text("")
+    (root / ".mon.csv.crc").write_text("x")
+    assert plan_run(cfg)["ingest_dir"] == first["ingest_dir"]
+    assert plan_run(load_config(tmp_path / "c.toml", ['input.csv_delimiter=","']))["ingest_dir"] != \
+        first["ingest_dir"]
+    (root / "tue.csv").write_text(_text(PAYMENTS[3:]))
+    assert plan_run(cfg)["ingest_dir"] != first["ingest_dir"]
