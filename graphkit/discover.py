@@ -51,6 +51,8 @@ _HIVE_SEGMENT = re.compile(r"^([A-Za-z_][A-Za-z0-9_]*)=(.*)$")
 _INTEGER = re.compile(r"^[+-]?[0-9]{1,18}$")
 _DATE = re.compile(r"^[0-9]{4}-[0-9]{2}-[0-9]{2}$")
 _ARROW_ROW = re.compile(r"Row #(\d+): Expected (\d+) columns, got (\d+)")
+_ARROW_CONVERSION = re.compile(r"In CSV column #(\d+): Row #(\d+): CSV conversion error to ([^:]+): invalid value "
+                               r"'(.*)'")
 
 
 def headerless_name(position: int) -> str:
@@ -285,6 +287,7 @@ class Discovery:
                     pass
             except (pa.ArrowInvalid, pa.ArrowNotImplementedError, OSError, UnicodeDecodeError) as exc:
                 return (text_row_error(f, exc, self.csv, self.files[0])
+                        or _conversion_error(f, exc, list(self.columns[self.files.index(f)]))
                         or f"{f}: cannot read it ({_first_line(exc)})")
         return None
 
@@ -326,6 +329,17 @@ def text_row_error(file: Path, exc, options: CsvOptions, first_file: Path | None
         hint = "; every line of a table without a header row needs the same number of fields"
     return (f"{file}: line {line} has {got} fields but {first} has {expected} (delimiter "
             f"{options.delimiter or 'by the file ending'!r}){hint}")
+
+
+def _conversion_error(file: Path, exc, names: list[str]) -> str | None:
+    """The one-line message for a text value that does not parse as its column's type, or None."""
+    m = _ARROW_CONVERSION.search(str(exc))
+    if not m:
+        return None
+    index, line, to, value = int(m.group(1)), int(m.group(2)), m.group(3), m.group(4)
+    name = repr(names[index]) if index < len(names) else f"#{index + 1}"
+    return (f"{file}: line {line}, column {name}: {value[:80]!r} is not {to} like the column's values in the first "
+            "MiB of the file, from which its type is taken")
 
 
 def _file_schema(f: Path, fmt: str, csv: CsvOptions, fs, width: int | None,

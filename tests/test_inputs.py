@@ -529,3 +529,13 @@ def test_stage_keys_follow_the_discovered_files(tmp_path):
         first["ingest_dir"]
     (root / "tue.csv").write_text(_text(PAYMENTS[3:]))
     assert plan_run(cfg)["ingest_dir"] != first["ingest_dir"]
+
+
+def test_a_value_past_the_first_block_that_does_not_fit_its_column_is_named(tmp_path):
+    """Arrow takes a text column's type from the file's first block (1 MiB); a later value of another kind fails
+    the scan, and the message names the file, line, column and value."""
+    path = tmp_path / "late.csv"
+    path.write_text("customer,merchant,amount\n" + "".join(f"{i},{i % 7},1.0\n" for i in range(150_000))
+                    + "cus-x,3,1.0\n")
+    with pytest.raises(EdgeTableError, match=r"late\.csv: line 150002, column 'customer': 'cus-x' is not int64"):
+        _ingest(tmp_path, path)
