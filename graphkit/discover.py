@@ -302,8 +302,9 @@ def _csv_format(fmt: str, options: CsvOptions, width: int | None) -> ds.CsvFileF
         read = pcsv.ReadOptions(column_names=[headerless_name(i + 1) for i in range(width)])
     # only an empty field is null (as in DuckDB's reader): NA, NULL or nan stay a string id or a NaN weight
     convert = pcsv.ConvertOptions(null_values=[""], strings_can_be_null=True, quoted_strings_can_be_null=False)
-    return ds.CsvFileFormat(parse_options=pcsv.ParseOptions(delimiter=delimiter), read_options=read,
-                            convert_options=convert)
+    # a quoted field may hold a line break (a device name, a note); Arrow then splits blocks at row ends only
+    parse = pcsv.ParseOptions(delimiter=delimiter, newlines_in_values=True)
+    return ds.CsvFileFormat(parse_options=parse, read_options=read, convert_options=convert)
 
 
 def _first_line(exc) -> str:

@@ -539,3 +539,14 @@ def test_a_value_past_the_first_block_that_does_not_fit_its_column_is_named(tmp_
                     + "cus-x,3,1.0\n")
     with pytest.raises(EdgeTableError, match=r"late\.csv: line 150002, column 'customer': 'cus-x' is not int64"):
         _ingest(tmp_path, path)
+
+
+def test_quoted_fields_keep_delimiters_and_line_breaks(tmp_path):
+    """Quoted ids holding the delimiter and a line break stay whole, over more than one 1 MiB block."""
+    path = tmp_path / "p.csv"
+    body = "".join(f'"cus-{i}, Lisbon","shop\n{i % 5}",1.0\n' for i in range(60_000))  # past one block
+    path.write_text("customer,merchant,amount\n" + body)
+    info = _ingest(tmp_path, path)
+    rows = [(f"cus-{i}, Lisbon", f"shop\n{i % 5}", 1.0) for i in range(60_000)]
+    assert info["counts"]["rows"] == len(rows)
+    _assert_same_graph(tmp_path / "out", rows)
