@@ -47,7 +47,9 @@ def _check_delimiter(value: str | None) -> str | None:
 class TableSection(_Section):
     """One edge table of the graph (an entry of ``[[input.tables]]``)."""
 
-    path: str = Field(description="Parquet or CSV file, folder (hive partitions allowed) or glob, relative to the config.")
+    path: str = Field(description="Parquet, CSV or TSV file (text also .gz, .bz2, .lz4, .zst, .zstd), folder (read "
+                                  "recursively, hive partitions typed, . and _ names skipped) or glob, relative to "
+                                  "the config.")
     source: str = Field(description="Column holding the source node id.")
     target: str = Field(description="Column holding the target node id.")
     weight: str | None = Field(default=None, description="Optional column holding a positive edge weight.")
@@ -66,7 +68,8 @@ class TableSection(_Section):
 
 
 class InputSection(_Section):
-    edges: str | None = Field(default=None, description="Shorthand for a single table: its path.")
+    edges: str | None = Field(default=None, description="Shorthand for a single table: its path (see "
+                                                         "TableSection.path).")
     source: str | None = Field(default=None, description="Shorthand for a single table: source column.")
     target: str | None = Field(default=None, description="Shorthand for a single table: target column.")
     weight: str | None = Field(default=None, description="Shorthand for a single table: weight column.")
