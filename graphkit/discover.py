@@ -219,6 +219,13 @@ class _LocalWithZstd(pfs.FileSystemHandler):
         open_output_stream = open_append_stream = _read_only
 
 
+def _filesystem(files: list[Path], text: bool) -> pfs.FileSystem:
+    """The file system Arrow opens the files through: the local one, or its ``.zst``-reading wrapper."""
+    if text and any(f.name.lower().endswith(".zst") for f in files):
+        return pfs.PyFileSystem(_LocalWithZstd())
+    return pfs.LocalFileSystem()
+
+
 @dataclass
 class Discovery:
     """What :func:`discover` found for one edge table (see the module docstring).
@@ -251,9 +258,7 @@ class Discovery:
         return _csv_format(self.format, self.csv, self.width)
 
     def filesystem(self) -> pfs.FileSystem:
-        if self.is_text and any(f.name.lower().endswith(".zst") for f in self.files):
-            return pfs.PyFileSystem(_LocalWithZstd())
-        return pfs.LocalFileSystem()
+        return _filesystem(self.files, self.is_text)
 
     def dataset(self, types: dict[str, pa.DataType], files: list[Path] | None = None) -> ds.Dataset:
         """The files (or some of them) as one Arrow dataset holding the columns ``types`` names, with those types
@@ -286,7 +291,7 @@ class Discovery:
                 for _ in self.dataset(types, [f]).to_batches():
                     pass
             except (pa.ArrowInvalid, pa.ArrowNotImplementedError, OSError, UnicodeDecodeError) as exc:
-                return (text_row_error(f, exc, self.csv, self.files[0])
+                return (_row_width_error(f, exc, self.csv, self.files[0])
                         or _conversion_error(f, exc, list(self.columns[self.files.index(f)]))
                         or f"{f}: cannot read it ({_first_line(exc)})")
         return None
@@ -315,7 +320,7 @@ def _first_line(exc) -> str:
     return text.splitlines()[0] if text else type(exc).__name__
 
 
-def text_row_error(file: Path, exc, options: CsvOptions, first_file: Path | None = None) -> str | None:
+def _row_width_error(file: Path, exc, options: CsvOptions, first_file: Path | None = None) -> str | None:
     """The one-line message for a text file whose rows do not have the header's number of fields (without a header:
     line 1 of ``first_file``, the table's first file), or None when ``exc`` is about something else."""
     m = _ARROW_ROW.search(str(exc))
@@ -357,7 +362,7 @@ def _file_schema(f: Path, fmt: str, csv: CsvOptions, fs, width: int | None,
     try:
         return fragment.physical_schema, None
     except (pa.ArrowInvalid, OSError, UnicodeDecodeError) as exc:
-        message = text_row_error(f, exc, csv, first_file)
+        message = _row_width_error(f, exc, csv, first_file)
         if message:
             raise EdgeTableError(message) from None
         raise EdgeTableError(f"{f}: not a readable {fmt.upper()} file ({_first_line(exc)})") from None
@@ -411,7 +416,7 @@ def discover(path: str, csv: CsvOptions = CsvOptions()) -> Discovery:
                              "one format (a glob such as **/*.parquet picks one)")
     fmt = next(iter(formats))
     text = fmt != "parquet"
-    fs = pfs.PyFileSystem(_LocalWithZstd()) if text else None
+    fs = _filesystem(files, text)
     part_values = _partition_values(files, root)
     keys = sorted({k for v in part_values for k in v})
     partitions = {k: _partition_type([v[k] for v in part_values if v.get(k) is not None]) for k in keys}
