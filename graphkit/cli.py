@@ -412,7 +412,8 @@ def cmd_features(args) -> int:
 def cmd_sql(args) -> int:
     import duckdb
 
-    from .store import connect, write_aside
+    from .io import atomic_output
+    from .store import connect
 
     if (args.query is None) == (args.file is None):
         raise InputError("sql: give either a query or --file FILE, not both")
@@ -444,7 +445,7 @@ def cmd_sql(args) -> int:
                 _write_result(rel, sys.stdout, args.format, args.max_rows)
                 return 0
             make_parent(out)
-            with write_aside(out) as tmp, open(tmp, "w", newline="", encoding="utf-8") as fh:
+            with atomic_output(out) as tmp, open(tmp, "w", newline="", encoding="utf-8") as fh:
                 n = _write_result(rel, fh, args.format, args.max_rows)
         except duckdb.Error as exc:
             raise InputError(_sql_error(exc)) from None

@@ -11,7 +11,8 @@ import pyarrow as pa
 
 from .errors import EdgeTableError, StoreError
 from .sql import Identifier, inline, load_sql, quote_ident
-from .store import spread_vectors, version_files, version_row, write_aside
+from .io import atomic_output
+from .store import spread_vectors, version_files, version_row
 
 __all__ = ["export_features"]
 
@@ -127,7 +128,7 @@ def export_features(store, entities, on: str, out, *, version: int | None = None
         writer = con.cursor()  # the joined rows stream from `con` while this connection writes them
         try:
             writer.register("feature_rows", pa.RecordBatchReader.from_batches(schema, spread()))
-            with write_aside(out) as tmp:
+            with atomic_output(out) as tmp:
                 rel = writer.table("feature_rows")
                 if fmt == "csv":
                     rel.write_csv(str(tmp))

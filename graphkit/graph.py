@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 import json
-import os
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from .errors import ConfigError
+from .io import atomic_output, write_json_atomic
 
 __all__ = ["AdjacencyArrays"]
 
@@ -152,15 +152,15 @@ class AdjacencyArrays:
         """Write the arrays as ``.npy`` files (plus ``graph.json``) so that workers can memory-map them."""
         folder = Path(folder)
         folder.mkdir(parents=True, exist_ok=True)
-        np.save(folder / "indptr.npy", self.indptr)
-        np.save(folder / "indices.npy", self.indices)
+        arrays = {"indptr": self.indptr, "indices": self.indices}
         if self.weights is not None:
-            np.save(folder / "weights.npy", self.weights)
+            arrays["weights"] = self.weights
+        for name, values in arrays.items():
+            with atomic_output(folder / f"{name}.npy") as tmp, open(tmp, "wb") as fh:
+                np.save(fh, values)
         meta = {"n_nodes": self.n_nodes, "n_edges": self.n_edges, "directed": self.directed,
                 "weighted": self.weights is not None}
-        tmp = folder / (_META + ".tmp")
-        tmp.write_text(json.dumps(meta))
-        os.replace(tmp, folder / _META)  # graph.json last: its presence marks a complete graph
+        write_json_atomic(folder / _META, meta)  # graph.json last: its presence marks a complete graph
         return folder
 
     @classmethod

@@ -29,7 +29,7 @@ from .faults import fault_point
 from .graph import AdjacencyArrays
 from .ingest import ingest_tables, validate_edge_tables
 from .ids import salt_from_env
-from .io import digest, fingerprint_files, read_json, write_json_atomic
+from .io import atomic_output, digest, fingerprint_files, read_json, write_json_atomic
 from .quality import check_labels_table
 
 __all__ = ["plan_run", "preflight", "stage_ingest", "stage_graph", "stage_holdout", "stage_walks", "stage_train",
@@ -444,9 +444,8 @@ def stage_train(cfg: RefreshConfig, plan: dict, which: str = "published") -> dic
                             negatives=t.negatives, epochs=t.epochs, seed=cfg.walks.seed, threads=t.threads,
                             learning_rate=t.learning_rate, subsample=t.subsample, init=init,
                             memmap_dir=str(out / "memmap") if t.memmap else None)
-    tmp = out / f".vectors-{os.getpid()}.npy"
-    np.save(tmp, vectors)
-    os.replace(tmp, out / "vectors.npy")
+    with atomic_output(out / "vectors.npy") as tmp, open(tmp, "wb") as fh:
+        np.save(fh, vectors)
     seconds = time.perf_counter() - t0
     tokens = int(corpus.n_tokens) * t.epochs
     result = {"vectors": str(out / "vectors.npy"), "n_nodes": int(vectors.shape[0]), "dim": int(vectors.shape[1]),
@@ -659,7 +658,9 @@ def _place_report(plan: dict, version: int, report: dict | None) -> None:
     if report is None:
         return
     try:
-        os.replace(report["tmp"], Path(plan["store"]) / "reports" / f"version-{version:06d}.html")
+        from .store import replace_durably
+
+        replace_durably(report["tmp"], Path(plan["store"]) / "reports" / f"version-{version:06d}.html")
     except Exception as exc:  # noqa: BLE001
         _warn_report(exc)
 

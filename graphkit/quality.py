@@ -9,6 +9,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .errors import EdgeTableError
@@ -76,17 +77,19 @@ def load_labels(path: str, nodes_parquet, *, id_column: str, label_column: str,
     """
     import duckdb
 
+    from .sql import load_sql
+
     files = check_labels_table(path, id_column=id_column, label_column=label_column)
+    # The two columns are read by name with Arrow and renamed, so no column name is ever written into SQL text.
+    table = pq.ParquetDataset([str(f) for f in files]).read(columns=[id_column, label_column])
+    as_text = [pc.cast(table.column(c), pa.string()) for c in (id_column, label_column)]
+    labels = pa.table({"label_row": pa.array(np.arange(table.num_rows, dtype=np.int64)),
+                       "label_node_id": as_text[0], "label": as_text[1]})
     con = duckdb.connect()
     try:
-        con.read_parquet([str(f) for f in files]).create_view("labels")
+        con.register("labels", labels)
         con.read_parquet(str(nodes_parquet)).create_view("nodes")
-        kind_filter = "" if kind is None else "and n.node_kind = $kind"
-        rows = con.execute(
-            f'select coalesce(n.node_idx, -1), l."{label_column}"::varchar from labels as l '
-            f'left join nodes as n on n.node_id::varchar = l."{id_column}"::varchar {kind_filter} '
-            f'where l."{label_column}" is not null and l."{id_column}" is not null',
-            {} if kind is None else {"kind": kind}).fetchall()
+        rows = con.execute(load_sql("labelled_nodes"), {"kind": kind}).fetchall()
     finally:
         con.close()
     idx = np.array([r[0] for r in rows], dtype=np.int64)

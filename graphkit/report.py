@@ -17,11 +17,12 @@ import base64
 import io
 import math
 import numbers
-import os
 import sys
 from pathlib import Path
 
 import numpy as np
+
+from .io import atomic_output
 
 __all__ = ["write_report", "report_title", "visible_range", "metric_label", "gate_results", "MAX_PROJECTED_POINTS",
            "STAGE_TIMINGS", "GATES"]
@@ -786,7 +787,6 @@ def write_report(out_html, *, versions, degrees=None, visit_counts=None, vectors
         metrics_before_head=before_head)
     out = Path(out_html)
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    tmp.write_text(page, encoding="utf-8")
-    os.replace(tmp, out)
+    with atomic_output(out) as tmp:
+        tmp.write_text(page, encoding="utf-8")
     return out

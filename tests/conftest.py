@@ -9,6 +9,11 @@ import numpy as np
 import pytest
 
 os.environ.setdefault("PREFECT_HOME", os.path.join(os.path.dirname(os.path.dirname(__file__)), ".prefect-home"))
+if os.environ.get("PYTEST_XDIST_WORKER"):
+    # Under pytest-xdist every worker gets a Prefect home (and so a SQLite database) of its own: two workers' temporary
+    # servers writing one database file would wait on each other's locks.
+    os.environ["PREFECT_HOME"] = os.path.join(os.environ["PREFECT_HOME"], os.environ["PYTEST_XDIST_WORKER"])
+os.makedirs(os.environ["PREFECT_HOME"], exist_ok=True)  # before Prefect's import, which warns when it cannot
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("DO_NOT_TRACK", "1")
 os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")

@@ -192,3 +192,42 @@ def test_two_pass_mode_still_runs_and_times_both_passes(planted, tmp_path):
     assert row["status"] == "complete" and row["counts"]["link_holdout"]["n_held_out"] == 300
     assert row["timings"]["eval_walks"] > 0 and row["timings"]["eval_train"] > 0
     assert row["metrics"]["link_auc_cosine"] > 0.8
+
+
+@pytest.mark.parametrize("id_column,label_column", [("account", "segment"), ('acc"t', "seg; drop table nodes; --"),
+                                                    ("Account Id", "select")],
+                         ids=["plain", "quote and statement", "space and keyword"])
+def test_load_labels_maps_rows_in_order_whatever_the_column_names(tmp_path, id_column, label_column):
+    """Labels are matched onto node indices by id (as text) and kind, in the labels table's order, with nulls
+    dropped; the column names reach no SQL text, so quotes, semicolons and keywords in them are just names."""
+    from graphkit.quality import load_labels
+
+    pq.write_table(pa.table({"node_idx": pa.array([0, 1, 2, 3], pa.int64()),
+                             "node_id": ["acct-1", "acct-2", "dev-9", "7"],
+                             "node_kind": ["account", "account", "device", "account"]}), tmp_path / "nodes.parquet")
+    ids = ["acct-2", "acct-1", None, "acct-404", "dev-9", "7", "acct-1"]
+    segments = ["retail", "business", "retail", "retail", None, "retail", "retail"]
+    pq.write_table(pa.table({id_column: ids, label_column: segments}), tmp_path / "labels.parquet")
+    idx, labels, counts = load_labels(str(tmp_path / "labels.parquet"), tmp_path / "nodes.parquet",
+                                      id_column=id_column, label_column=label_column)
+    # by hand: rows 2 (null id) and 4 (null label) dropped; acct-404 is not a node
+    assert idx.tolist() == [1, 0, -1, 3, 0]
+    assert labels.tolist() == ["retail", "business", "retail", "retail", "retail"]
+    assert counts == {"rows": 5, "unmatched": 1}
+    idx, _, _ = load_labels(str(tmp_path / "labels.parquet"), tmp_path / "nodes.parquet", id_column=id_column,
+                            label_column=label_column, kind="device")
+    assert idx.tolist() == [-1, -1, -1, -1, -1]
+    assert pq.read_table(tmp_path / "nodes.parquet").num_rows == 4  # nothing ran against the nodes
+
+
+def test_load_labels_reads_integer_ids_as_text(tmp_path):
+    """An integer id column matches the text node ids it spells (DuckDB's cast and Arrow's give the same digits)."""
+    from graphkit.quality import load_labels
+
+    pq.write_table(pa.table({"node_idx": pa.array([0, 1], pa.int64()), "node_id": ["10", "20"],
+                             "node_kind": ["account", "account"]}), tmp_path / "nodes.parquet")
+    pq.write_table(pa.table({"id": pa.array([20, 10, 30], pa.int64()), "label": pa.array([1, 2, 1], pa.int32())}),
+                   tmp_path / "labels.parquet")
+    idx, labels, _ = load_labels(str(tmp_path / "labels.parquet"), tmp_path / "nodes.parquet", id_column="id",
+                                 label_column="label")
+    assert idx.tolist() == [1, 0, -1] and labels.tolist() == ["1", "2", "1"]

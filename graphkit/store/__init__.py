@@ -23,8 +23,7 @@ from .catalog import (CATALOG, apply_retention, clean_stale, current_version, di
                       list_versions, load_diagnostics, pin_version, promote_version, publish_embeddings, read_table,
                       read_version, record_failed_run, version_of_run, version_row)
 from .lock import WRITERS, check_store_writable, fsync_dir, replace_durably, store_lock
-from .query import (connect, export_version, report_inputs, similar_nodes, spread_vectors, version_files,
-                    write_aside)
+from .query import connect, export_version, report_inputs, similar_nodes, spread_vectors, version_files
 from .work import WORK_PREFIXES, clean_work
 
 __all__ = ["connect", "publish_embeddings", "record_failed_run", "version_of_run", "list_versions", "read_version",
@@ -32,4 +31,4 @@ __all__ = ["connect", "publish_embeddings", "record_failed_run", "version_of_run
            "apply_retention", "store_lock", "check_store_writable", "clean_stale", "clean_work", "WORK_PREFIXES",
            "diagnostic_arrays", "load_diagnostics", "gather_rows", "align_to_current", "match_current",
            "ALIGN_BLOCK_BYTES", "similar_nodes", "export_version", "spread_vectors", "report_inputs",
-           "write_aside", "replace_durably", "fsync_dir", "WRITERS", "CATALOG", "StoreError"]
+           "replace_durably", "fsync_dir", "WRITERS", "CATALOG", "StoreError"]

@@ -16,6 +16,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from . import lock
 from .catalog import current_version, gather_rows, version_row
 
 __all__ = ["align_to_current", "match_current", "ALIGN_BLOCK_BYTES"]
@@ -116,7 +117,7 @@ def match_current(store, node_ids: pa.Array, node_kinds: pa.Array, dim: int, *,
         del old_vec
     (tmp / "match.json").write_text(json.dumps(meta))  # last: the marker of a complete cache
     shutil.rmtree(folder, ignore_errors=True)
-    os.replace(tmp, folder)
+    lock.replace_durably(tmp, folder)
     cached = _cached_match(folder, cur, len(node_ids), int(dim))
     return None if cached is None or cached.get("unmatched") else cached
 

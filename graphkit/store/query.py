@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import os
-from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -12,10 +11,11 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import InputError, StoreError
+from ..io import atomic_output
 from ..sql import Identifier, inline, load_sql
 from .catalog import CATALOG, gather_rows, list_versions, load_diagnostics, version_row
 
-__all__ = ["connect", "version_files", "similar_nodes", "export_version", "spread_vectors", "write_aside",
+__all__ = ["connect", "version_files", "similar_nodes", "export_version", "spread_vectors",
            "report_inputs"]
 
 
@@ -150,19 +150,6 @@ def similar_nodes(store, node_id: str, top: int = 10, version: int | None = None
         con.close()
 
 
-@contextmanager
-def write_aside(out: Path):
-    """Yield a temporary path beside ``out``; on success it is renamed over ``out``, else removed, so ``out`` is
-    either the old file or the whole new one."""
-    out = Path(out)
-    tmp = out.with_name(f".{out.name}.tmp-{os.getpid()}")
-    try:
-        yield tmp
-        os.replace(tmp, out)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def spread_vectors(table: pa.Table, prefix: str = "emb_", column: str = "vector") -> pa.Table:
     """``table`` with its fixed-size ``vector`` column replaced by float32 columns ``emb_000 …`` (for CSV and for
     feature tables); null vectors give nulls."""
@@ -191,7 +178,7 @@ def export_version(store, out, *, version: int | None = None, fmt: str = "parque
     finally:
         con.close()
     out = Path(out)
-    with write_aside(out) as tmp:
+    with atomic_output(out) as tmp:
         if fmt == "csv":
             pcsv.write_csv(spread_vectors(table), tmp)
         else:
