@@ -220,7 +220,7 @@ def run_refresh(config: Path, log_path: Path, store: Path | None = None, progres
                 sampler.enter(m.group(1))
                 if progress:
                     progress(f"stage {m.group(1)} started at {time.monotonic() - t0:.0f} s")
-            elif "published version" in line and "Flow run" in line:
+            elif line.startswith("published version"):  # the command's last line, after the flow has ended
                 sampler.enter("finish")
     rc = proc.wait()
     wall = time.monotonic() - t0
