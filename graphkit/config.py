@@ -33,20 +33,43 @@ class _Section(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True, frozen=True)
 
 
+def _check_delimiter(value: str | None) -> str | None:
+    """One character that can separate fields: not a line break, not the quote character."""
+    if value is None:
+        return None
+    if len(value) != 1:
+        raise ValueError(f"must be one character (a tab is \"\\t\"), got {value!r}")
+    if value in ('"', "\n", "\r"):
+        raise ValueError(f"{value!r} cannot separate fields (it is the quote or a line break)")
+    return value
+
+
 class TableSection(_Section):
     """One edge table of the graph (an entry of ``[[input.tables]]``)."""
 
-    path: str = Field(description="Parquet or CSV file, folder (hive partitions allowed) or glob, relative to the config.")
+    path: str = Field(description="Parquet, CSV or TSV file (text also .gz, .bz2, .lz4, .zst, .zstd), folder (read "
+                                  "recursively, hive partitions typed, . and _ names skipped) or glob, relative to "
+                                  "the config.")
     source: str = Field(description="Column holding the source node id.")
     target: str = Field(description="Column holding the target node id.")
     weight: str | None = Field(default=None, description="Optional column holding a positive edge weight.")
     source_kind: str = Field(default="node", min_length=1, description="Kind of the source nodes (e.g. account).")
     target_kind: str = Field(default="node", min_length=1, description="Kind of the target nodes (e.g. device).")
     timestamp: str | None = Field(default=None, description="Optional column with the time of each edge.")
+    csv_header: bool | None = Field(default=None, description="This table's CSV/TSV files start with a header "
+                                                                "row (default: [input] csv_header).")
+    csv_delimiter: str | None = Field(default=None, description="This table's CSV/TSV field delimiter, one "
+                                                                "character (default: [input] csv_delimiter).")
+
+    @field_validator("csv_delimiter")
+    @classmethod
+    def _one_character(cls, value):
+        return _check_delimiter(value)
 
 
 class InputSection(_Section):
-    edges: str | None = Field(default=None, description="Shorthand for a single table: its path.")
+    edges: str | None = Field(default=None, description="Shorthand for a single table: its path (see "
+                                                         "TableSection.path).")
     source: str | None = Field(default=None, description="Shorthand for a single table: source column.")
     target: str | None = Field(default=None, description="Shorthand for a single table: target column.")
     weight: str | None = Field(default=None, description="Shorthand for a single table: weight column.")
@@ -63,6 +86,15 @@ class InputSection(_Section):
     hash_ids: bool = Field(default=False, description="Publish HMAC-SHA256 pseudonyms instead of raw ids.")
     hash_salt_env: str = Field(default="GRAPHKIT_ID_SALT", min_length=1,
                                description="Environment variable holding the secret key for hash_ids.")
+    csv_header: bool = Field(default=True, description="CSV/TSV edge files start with a header row naming the "
+                                                       "columns; false: columns are named column_1, column_2, ...")
+    csv_delimiter: str | None = Field(default=None, description="CSV/TSV field delimiter, one character "
+                                                                "(default: ',' for .csv files, a tab for .tsv).")
+
+    @field_validator("csv_delimiter")
+    @classmethod
+    def _one_character(cls, value):
+        return _check_delimiter(value)
 
     @model_validator(mode="after")
     def _one_way_to_name_tables(self):
@@ -282,8 +314,14 @@ class RefreshConfig(_Section):
         return self.tables()[0].path
 
     def tables(self) -> list[TableSection]:
-        """Every edge table with its path resolved against the config file's folder."""
-        return [t.model_copy(update={"path": _resolve(self.base_dir, t.path)}) for t in self.input.table_specs()]
+        """Every edge table with its path resolved against the config file's folder and its text-file options
+        filled from ``[input]`` where the entry gives none."""
+        inp = self.input
+        return [t.model_copy(update={
+            "path": _resolve(self.base_dir, t.path),
+            "csv_header": inp.csv_header if t.csv_header is None else t.csv_header,
+            "csv_delimiter": inp.csv_delimiter if t.csv_delimiter is None else t.csv_delimiter})
+            for t in inp.table_specs()]
 
     @property
     def store_path(self) -> Path:

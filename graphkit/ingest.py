@@ -7,7 +7,6 @@ node kind and ids are kept apart per kind, so account 17 and device 17 are diffe
 from __future__ import annotations
 
 import difflib
-import re
 import time
 import warnings
 from dataclasses import dataclass
@@ -19,21 +18,20 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .discover import CsvOptions, Discovery, discover
 from .errors import EdgeTableError, GraphDataWarning
 from .faults import fault_point
 from .graph import AdjacencyArrays
-from .io import digest, fingerprint_files, resolve_input_files, write_json_atomic
-from .sql import bind, load_sql, quote_ident, sql_literal, work_connection
+from .io import digest, fingerprint_files, write_json_atomic
+from .sql import bind, inline, load_sql, quote_ident, sql_literal, work_connection
 
 __all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "validate_edge_tables", "ingest_tables",
            "ingest_edges"]
 
-_HIVE_PART = re.compile(r"^([A-Za-z_][A-Za-z0-9_]*)=(.*)$")
-
-
 @dataclass(frozen=True)
 class EdgeTable:
-    """One edge table: where it is, which columns hold what, and the node kind of each side."""
+    """One edge table: where it is, which columns hold what, the node kind of each side, and how its text files
+    are parsed (``csv_header``; ``csv_delimiter``, None for the file ending's default)."""
 
     path: str
     source: str
@@ -42,13 +40,18 @@ class EdgeTable:
     source_kind: str = "node"
     target_kind: str = "node"
     timestamp: str | None = None
+    csv_header: bool = True
+    csv_delimiter: str | None = None
 
     @classmethod
     def of(cls, spec) -> "EdgeTable":
         if isinstance(spec, cls):
             return spec
         d = spec if isinstance(spec, dict) else spec.model_dump()
-        return cls(**{k: d.get(k, getattr(cls, k, None)) for k in cls.__dataclass_fields__})
+        out = {k: d.get(k, getattr(cls, k, None)) for k in cls.__dataclass_fields__}
+        if out["csv_header"] is None:  # a table entry without its own setting
+            out["csv_header"] = True
+        return cls(**out)
 
 
 def _suggest(name: str, columns) -> str:
@@ -77,45 +80,42 @@ def _arrow_type_name(t: pa.DataType) -> str:
     return str(t)
 
 
-def _is_csv(files) -> bool:
-    return all(f.suffix.lower() in (".csv", ".tsv") or f.name.lower().endswith((".csv.gz", ".csv.zst"))
-               for f in files)
+def _csv_options(t: EdgeTable) -> CsvOptions:
+    return CsvOptions(header=t.csv_header is not False, delimiter=t.csv_delimiter)
 
 
-def _file_columns(f: Path) -> dict[str, str]:
-    """Column name -> coarse type name of one file (Parquet: the footer only; CSV: DuckDB's sniffer)."""
-    if _is_csv([f]):
-        con = duckdb.connect()
-        try:
-            rel = con.read_csv(str(f), header=True)
-            cols = dict(zip(rel.columns, (str(t) for t in rel.types)))
-        except duckdb.Error as exc:
-            raise EdgeTableError(f"{f}: not a readable CSV file ({_first_line(exc)})") from None
-        finally:
-            con.close()
-        return cols
+def _discover(t: EdgeTable) -> Discovery:
+    return discover(t.path, _csv_options(t))
+
+
+def _unified_type(found: Discovery, col: str) -> pa.DataType:
+    """One Arrow type for ``col`` across the table's files (int32 and int64 as int64, ints and floats as float64)."""
+    types = [cols[col] for cols in found.columns]
+    if all(t == types[0] for t in types):
+        return types[0]
     try:
-        schema = pq.read_metadata(f).schema.to_arrow_schema()
-    except (pa.ArrowInvalid, OSError) as exc:
-        reason = _first_line(exc)
-        raise EdgeTableError(f"{f}: not a readable Parquet file ({reason})") from None
-    cols = {name: _arrow_type_name(schema.field(name).type) for name in schema.names}
-    for part in f.parts[:-1]:  # hive partition folders (day=2026-11-30/) add columns
-        m = _HIVE_PART.match(part)
-        if m and m.group(1) not in cols:
-            cols[m.group(1)] = "HIVE"
-    return cols
+        return pa.unify_schemas([pa.schema([(col, t)]) for t in types], promote_options="permissive").field(col).type
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError):
+        i = next(i for i, t in enumerate(types) if t != types[0])
+        raise EdgeTableError(f"{found.files[i]}: column {col!r} has type {types[i]}, but {types[0]} in "
+                             f"{found.files[0]}; all files of a table need one type per column") from None
 
 
-def _num_rows(f: Path) -> int | None:
-    if _is_csv([f]):
-        return None
-    return pq.read_metadata(f).num_rows
+def _scan_types(t: EdgeTable, found: Discovery, id_type: str) -> dict[str, pa.DataType]:
+    """The columns a scan of table ``t`` reads and the Arrow type each file's values are cast to."""
+    id_arrow = pa.int64() if id_type == "integer" else pa.string()
+    types = {t.source: id_arrow, t.target: id_arrow}
+    for col in (t.weight, t.timestamp):
+        if col is not None:
+            types[col] = _unified_type(found, col)
+    return types
 
 
 def check_edge_tables(tables) -> dict[str, Any]:
     """Cheap checks of every edge table before any work starts: files exist, are readable, carry the columns,
-    and all node ids have one type. Reads only Parquet footers (and the first rows of CSV files).
+    and all node ids have one type. Reads only Parquet footers and the first block of text files (through
+    :func:`graphkit.discover.discover`, once per process while the files are unchanged); hive partition columns
+    are checked like the files' own.
 
     Returns
     -------
@@ -126,30 +126,31 @@ def check_edge_tables(tables) -> dict[str, Any]:
     Raises
     ------
     EdgeTableError
-        Naming the file and column: no files, unreadable file, missing column (with the closest existing name),
-        ids of different types across files or tables, a non-numeric weight.
+        Naming the file and column: no files, mixed formats, unreadable file, a text line with the wrong number of
+        fields, missing column (with the closest existing name), ids of different types across files or tables,
+        a non-numeric weight, a timestamp column holding neither dates, times nor text.
     """
     tables = [EdgeTable.of(t) for t in tables]
     all_files, n_rows = [], 0
     id_kinds: dict[str, str] = {}
     for i, t in enumerate(tables):
         key = "[input]" if len(tables) == 1 else f"[[input.tables]] entry {i + 1}"
-        files = resolve_input_files(t.path, suffixes=(".parquet", ".csv"))
-        for f in files:
-            cols = _file_columns(f)
+        found = _discover(t)
+        for f, arrow_cols in zip(found.files, found.columns):
+            cols = {name: _arrow_type_name(tp) for name, tp in arrow_cols.items()}
             for role, col in (("source", t.source), ("target", t.target), ("weight", t.weight),
                               ("timestamp", t.timestamp)):
                 if col is not None and col not in cols:
                     raise EdgeTableError(f"{f}: no column {col!r} for {key} {role}{_suggest(col, cols)}")
             for col in (t.source, t.target):
-                if cols[col] != "HIVE":
-                    id_kinds.setdefault(_id_kind(cols[col]), f"{f} column {col!r}")
-            if t.weight is not None and cols[t.weight] not in ("DOUBLE", "BIGINT", "HIVE", "FLOAT") \
-                    and not any(x in cols[t.weight].upper() for x in ("INT", "DOUBLE", "FLOAT", "DECIMAL")):
+                id_kinds.setdefault(_id_kind(cols[col]), f"{f} column {col!r}")
+            if t.weight is not None and cols[t.weight] not in ("DOUBLE", "BIGINT"):
                 raise EdgeTableError(f"{f}: weight column {t.weight!r} must be numeric, got {cols[t.weight]}")
-            rows = _num_rows(f)
-            n_rows = None if rows is None or n_rows is None else n_rows + rows
-        all_files.append(files)
+            if t.timestamp is not None and cols[t.timestamp] not in ("TIMESTAMP", "VARCHAR"):
+                raise EdgeTableError(f"{f}: timestamp column {t.timestamp!r} must hold dates or times (or text "
+                                     f"DuckDB reads as one), got {cols[t.timestamp]}")
+        n_rows = None if found.n_rows is None or n_rows is None else n_rows + found.n_rows
+        all_files.append(found.files)
     if len(id_kinds) > 1:
         (k1, w1), (k2, w2) = list(id_kinds.items())[:2]
         raise EdgeTableError(f"{w2}: node ids of type {k2}, but of type {k1} in {w1}; all ids must have one type")
@@ -209,16 +210,31 @@ def _fetch_adjacency(result, n_nodes: int, n_entries: int, weighted: bool):
     return indptr, indices, wts
 
 
-def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: str) -> None:
-    """Register ``raw_edges(src_kind, src, dst_kind, dst, weight, ts)``: every table projected and stacked."""
+def _table_rows(con, t: EdgeTable, found: Discovery, id_type: str, keep: list):
+    """A relation over one table's rows: DuckDB's own reader over the discovered Parquet files (its speed and its
+    memory limit), joined to the partition values discovery typed; text files as the Arrow dataset discovery
+    parses them. Objects the relation reads from are appended to ``keep``."""
+    if found.is_text:
+        dataset = found.dataset(_scan_types(t, found, id_type))
+        keep.append(dataset)
+        return con.from_arrow(dataset)
+    names = [str(f.resolve()) for f in found.files]
+    rel = con.sql(inline(load_sql("edge_files"), {"files": names}))
+    if not found.partitions:
+        return rel
+    values = found.partition_table(names)
+    keep.append(values)
+    return rel.set_alias("f").join(con.from_arrow(values).set_alias("p"),
+                                   "f.__graphkit_file = p.__graphkit_file")
+
+
+def _raw_view(con, tables: list[EdgeTable], id_type: str) -> list:
+    """Register ``raw_edges(src_kind, src, dst_kind, dst, weight, ts, table_path)``: every table projected and
+    stacked. Returns the Arrow objects the view reads from, which must stay referenced while it is used."""
     id_sql = "bigint" if id_type == "integer" else "varchar"
-    parts = []
-    for t, fs in zip(tables, files):
-        names = [str(f) for f in fs]
-        if _is_csv(fs):
-            rel = con.read_csv(names, header=True)
-        else:
-            rel = con.read_parquet(names, hive_partitioning=Path(t.path).is_dir(), union_by_name=True)
+    parts, datasets = [], []
+    for t in tables:
+        rel = _table_rows(con, t, _discover(t), id_type, datasets)
         w = f"{quote_ident(t.weight)}::double" if t.weight else "1.0::double"
         ts = f"{quote_ident(t.timestamp)}::timestamptz" if t.timestamp else "null::timestamptz"
         parts.append(rel.project(
@@ -229,6 +245,20 @@ def _raw_view(con, tables: list[EdgeTable], files: list[list[Path]], id_type: st
     for p in parts[1:]:
         rel = rel.union(p)
     rel.create_view("raw_edges")
+    return datasets
+
+
+def _read_error(tables: list[EdgeTable], id_type: str, where: str, exc) -> EdgeTableError:
+    """The error for a scan DuckDB could not finish: naming the text file and line when a file alone fails."""
+    try:
+        for t in tables:
+            found = _discover(t)
+            message = found.locate_error(_scan_types(t, found, id_type))
+            if message:
+                return EdgeTableError(message)
+    except Exception:  # noqa: BLE001 - building an error message must not fail; the scan's own reason is shown
+        pass
+    return EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})")
 
 
 def _examples(con, check: str) -> list[tuple]:
@@ -337,12 +367,13 @@ def validate_edge_tables(tables, *, drop_null_ids: bool = False, window: dict | 
     where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
     con = work_connection()
     try:
-        _raw_view(con, tables, info["files"], info["id_type"])
+        datasets = _raw_view(con, tables, info["id_type"])
         sql = load_sql("windowed_edges")
         con.execute("create temp view windowed as " + _inline_params(sql, _window_params(window, False)))
         n_rows, n_outside, n_null, n_loops = _check_rows(con, tables, drop_null_ids, where, window)
+        del datasets
     except duckdb.Error as exc:
-        raise EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})") from None
+        raise _read_error(tables, info["id_type"], where, exc) from None
     finally:
         con.close()
     counts = {"rows": n_rows, "outside_window": n_outside, "null_ids": n_null, "self_loops": n_loops}
@@ -434,8 +465,9 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
     where = tables[0].path if len(tables) == 1 else f"{len(tables)} edge tables"
     con = work_connection(out_dir / "duckdb_tmp", threads=threads, memory_limit=memory_limit)
     try:
-        _raw_view(con, tables, info["files"], info["id_type"])
+        datasets = _raw_view(con, tables, info["id_type"])
         _run(con, "windowed_edges", params, create="temp table windowed")
+        del datasets  # read whole into the table
         checked = _CHECKED.get(_checks_key(tables, info["files"], drop_null_ids, window))
         if checked is not None:  # the preflight of this run checked these rows: no second pass over them
             n_rows, n_outside, n_null, n_loops = (checked[k] for k in ("rows", "outside_window", "null_ids",
@@ -457,7 +489,7 @@ def ingest_tables(tables, out_dir, *, directed: bool = False, drop_null_ids: boo
         sql = load_sql("edge_index")  # a relation, not a DB-API result: streamed without an extra copy
         indptr, indices, wts = _fetch_adjacency(con.sql(sql, params=bind(sql, params)), n_nodes, n_entries, weighted)
     except duckdb.Error as exc:
-        raise EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})") from None
+        raise _read_error(tables, info["id_type"], where, exc) from None
     finally:
         con.close()
     graph = AdjacencyArrays.from_arrays(indptr, indices, wts, directed=directed)

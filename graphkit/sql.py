@@ -75,12 +75,15 @@ def inline(sql: str, params: dict) -> str:
     Only for the statements DuckDB cannot prepare: ``create view`` and ``create macro`` store their body as text,
     so it cannot refer to a bound parameter, and a type such as ``float[$dim]`` is never a parameter. Everything
     else binds its ``$name`` values (:func:`bind`). Strings become quoted literals, :class:`Identifier` values
-    quoted identifiers, ints their digits; any other type is refused rather than guessed at.
+    quoted identifiers, ints their digits, a list of strings a list of quoted literals; any other type is refused
+    rather than guessed at.
     """
     def text(match):
         value = params[match.group(1)]
         if isinstance(value, Identifier):
             return ".".join(quote_ident(part) for part in value.split("."))
+        if isinstance(value, (list, tuple)) and value and all(isinstance(v, str) for v in value):
+            return "[" + ", ".join(sql_literal(v) for v in value) + "]"
         if isinstance(value, bool) or not isinstance(value, (int, str)):
             raise TypeError(f"${match.group(1)}: cannot write {type(value).__name__} into SQL text")
         return str(int(value)) if isinstance(value, int) else sql_literal(value)

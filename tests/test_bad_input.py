@@ -132,6 +132,11 @@ BAD_SETS = {
     "null_ids": (["input.drop_null_ids=false"], r"transfers\.parquet: 7 of \d+ rows have a null id"),
     "missing_labels": (['evaluate.labels="nope.parquet"'], r"nope\.parquet"),
     "hash_without_key": (["input.hash_ids=true"], r"hash_ids = true needs a secret key in environment variable"),
+    "csv_delimiter_two_chars": (['input.csv_delimiter=";;"'],
+                                r"--set input.csv_delimiter: \[input\] csv_delimiter: must be one character"),
+    "csv_delimiter_quote": (["input.csv_delimiter='\"'"], r"\[input\] csv_delimiter: '\"' cannot separate fields"),
+    "csv_header_not_bool": (['input.csv_header="no"'], r"--set input.csv_header: \[input\] csv_header: input "
+                                                       r"should be a valid boolean"),
 }
 
 
@@ -296,6 +301,72 @@ def test_bad_edge_table_exits_2_with_the_reason(store, tmp_path, capsys, case):
         assert str(folder) in err  # names the file
         assert seconds < 10
         assert digest_tree(store) == before
+
+
+# ------------------------------------------------------------------------------------------ input discovery
+
+def _write_discovered(folder: Path, case: str) -> tuple[str, str]:
+    """An edge table that discovery refuses: (its path in the config, extra [input] lines)."""
+    rows = "a,b,1.0\nb,c,2.0\n"
+    if case == "short_header":
+        (folder / "edges.csv").write_text("sender,receiver\n" + rows)
+        return "edges.csv", ""
+    if case == "long_header":
+        (folder / "edges.tsv").write_text("sender\treceiver\tamount\tnote\n" + rows.replace(",", "\t"))
+        return "edges.tsv", ""
+    if case == "headerless_width_changes":
+        (folder / "edges").mkdir()
+        (folder / "edges" / "1.csv").write_text(rows)
+        (folder / "edges" / "2.csv").write_text("a,b,1.0,x\n")
+        return "edges", 'csv_header = false\n'
+    if case == "semicolon_file_read_with_commas":  # the header is one field: its name says what happened
+        (folder / "edges.csv").write_text("sender;receiver;amount\n" + rows.replace(",", ";"))
+        return "edges.csv", ""
+    if case == "mixed_formats":
+        (folder / "edges").mkdir()
+        pq.write_table(pa.table({"sender": ["a"], "receiver": ["b"], "amount": [1.0]}), folder / "edges" / "1.parquet")
+        (folder / "edges" / "2.csv.gz").write_bytes(__import__("gzip").compress(b"sender,receiver,amount\na,b,1\n"))
+        return "edges", ""
+    if case == "empty_folder":
+        (folder / "edges" / "_temporary").mkdir(parents=True)
+        (folder / "edges" / "_SUCCESS").write_text("")
+        (folder / "edges" / ".part-0.parquet.crc").write_text("")
+        return "edges", ""
+    if case == "int_partition_as_time":
+        (folder / "edges" / "day=20261130").mkdir(parents=True)
+        pq.write_table(pa.table({"sender": ["a"], "receiver": ["b"], "amount": [1.0]}),
+                       folder / "edges" / "day=20261130" / "part-0.parquet")
+        return "edges", 'timestamp = "day"\n'
+    raise AssertionError(case)
+
+
+BAD_DISCOVERY = {
+    "short_header": r"edges\.csv: line 2 has 3 fields but the header row \(line 1\) has 2",
+    "long_header": r"edges\.tsv: line 2 has 3 fields but the header row \(line 1\) has 4",
+    "headerless_width_changes": r"2\.csv: line 1 has 4 fields but line 1 of \S+1\.csv has 3",
+    "semicolon_file_read_with_commas": r"edges\.csv: no column 'sender' for \[input\] source .*sender;receiver;amount",
+    "mixed_formats": r"edges: mixes edge file formats \(1 csv, 1 parquet files",
+    "empty_folder": r"edges: folder holds no edge files",
+    "int_partition_as_time": r"day=20261130.*timestamp column 'day' must hold dates or times .*got BIGINT",
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_DISCOVERY))
+def test_bad_discovery_exits_2_naming_the_file_or_folder(store, tmp_path, capsys, case):
+    folder = tmp_path / "input"
+    folder.mkdir()
+    edges, extra = _write_discovered(folder, case)
+    config = folder / "c.toml"
+    config.write_text(TABLE_CONFIG.format(edges=edges, store=store).replace('weight = "amount"\n',
+                                                                             'weight = "amount"\n' + extra))
+    before = digest_tree(store)
+    code, _, err, seconds = run(capsys, "refresh", config)
+    assert code == 2, err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err, err
+    assert re.search(BAD_DISCOVERY[case], err), err
+    assert str(folder / edges) in err  # names the file or folder
+    assert seconds < 10
+    assert digest_tree(store) == before
 
 
 # ------------------------------------------------------------------------------------------ other commands

@@ -117,3 +117,36 @@ def test_missing_required_and_file(tmp_path):
         load_config(tmp_path / "absent.toml")
     with pytest.raises(ConfigError, match="not valid TOML"):
         load_config(_write(tmp_path, "[input\n"))
+
+
+def test_text_file_options_default_per_table_from_input(tmp_path):
+    text = """
+[input]
+csv_header = false
+csv_delimiter = "\\t"
+
+[[input.tables]]
+path = "logins.csv"
+source = "column_1"
+target = "column_2"
+
+[[input.tables]]
+path = "transfers.csv"
+source = "sender"
+target = "receiver"
+csv_header = true
+csv_delimiter = ";"
+
+[store]
+path = "store"
+"""
+    cfg = load_config(_write(tmp_path, text))
+    assert [(t.csv_header, t.csv_delimiter) for t in cfg.tables()] == [(False, "\t"), (True, ";")]
+    assert cfg.to_public_dict()["input"]["tables"][0]["csv_delimiter"] == "\t"  # recorded with the version
+    plain = load_config(_write(tmp_path, BASE))
+    assert (plain.tables()[0].csv_header, plain.tables()[0].csv_delimiter) == (True, None)  # None: by the ending
+    with pytest.raises(ConfigError, match=r"c\.toml: \[\[input.tables\]\] entry 2 key csv_delimiter: must be one "
+                                          r"character .*got ';;'"):
+        load_config(_write(tmp_path, text.replace('csv_delimiter = ";"', 'csv_delimiter = ";;"')))
+    with pytest.raises(ConfigError, match=r"c\.toml: \[input\] csv_delimiter: '\\n' cannot separate fields"):
+        load_config(_write(tmp_path, text.replace('csv_delimiter = "\\t"', 'csv_delimiter = "\\n"')))

@@ -206,7 +206,9 @@ def run_refresh(config: Path, log_path: Path, store: Path | None = None, progres
     env = {**os.environ, "PYTHONUNBUFFERED": "1"}
     env.setdefault("PREFECT_HOME", str(ROOT / ".prefect-home"))
     t0 = time.monotonic()
-    proc = subprocess.Popen([sys.executable, "-m", "graphkit.cli", "refresh", str(config)], cwd=ROOT, env=env,
+    # --log-level debug: the runner logs each stage's start ("stage NAME started") at debug, which books the samples
+    proc = subprocess.Popen([sys.executable, "-m", "graphkit.cli", "refresh", str(config), "--log-level", "debug"],
+                            cwd=ROOT, env=env,
                             stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True, bufsize=1)
     sampler = TreeSampler(proc.pid, store)
     sampler.start()
@@ -218,7 +220,7 @@ def run_refresh(config: Path, log_path: Path, store: Path | None = None, progres
                 sampler.enter(m.group(1))
                 if progress:
                     progress(f"stage {m.group(1)} started at {time.monotonic() - t0:.0f} s")
-            elif "published version" in line and "Flow run" in line:
+            elif line.startswith("published version"):  # the command's last line, after the flow has ended
                 sampler.enter("finish")
     rc = proc.wait()
     wall = time.monotonic() - t0
