@@ -182,7 +182,7 @@ except (OSError, ValueError):
     data = {}
 data[which] = round(max(seconds, 0.0), 3)
 tmp = path + ".tmp-" + str(os.getpid())
-with os.fdopen(os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644), "w") as f:
+with open(tmp, "w") as f:
     os.fchmod(f.fileno(), 0o644)  # like the rest of the store, whatever umask the run left
     json.dump(data, f)
 os.replace(tmp, path)
