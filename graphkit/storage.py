@@ -302,7 +302,8 @@ def access_error(path, exc) -> str | None:
                 f"{_hint(protocol)}")
     if isinstance(exc, (OSError, TimeoutError)) or type(exc).__module__.split(".")[0] in (
             "botocore", "aiobotocore", "aiohttp", "google", "azure", "requests", "urllib3"):
-        endpoint = " (AWS_ENDPOINT_URL names the server of an S3-compatible store)" if protocol == "s3" else ""
+        endpoint = ("; an S3-compatible server is named by AWS_ENDPOINT_URL (or AWS_ENDPOINT_URL_S3, or the "
+                    "profile's endpoint_url)" if protocol == "s3" else "")
         return f"{path}: cannot read from the object store ({_reason(exc)}){endpoint}"
     return None
 

@@ -257,6 +257,26 @@ def test_fingerprints_come_from_metadata_and_decide_the_reingest(s3, tmp_path, m
     assert stage_ingest(cfg, later).get("skipped") is not True
 
 
+def test_one_graph_from_a_local_table_and_a_table_on_s3(s3, tmp_path):
+    """``[[input.tables]]`` mixes a local file and an object: node kinds kept apart, each table's own CSV options."""
+    (tmp_path / "logins.tsv").write_text("account\tdevice\ncus-01\tdev-1\ncus-02\tdev-1\n")
+    s3.put("mixed/payments.csv", b"cus-01;shop-a;2.0\ncus-03;shop-a;1.0\n")
+    config = tmp_path / "c.toml"
+    config.write_text(
+        '[[input.tables]]\npath = "logins.tsv"\nsource = "account"\ntarget = "device"\nsource_kind = "account"\n'
+        'target_kind = "device"\n\n'
+        f'[[input.tables]]\npath = "s3://{BUCKET}/mixed/payments.csv"\nsource = "column_1"\ntarget = "column_2"\n'
+        'weight = "column_3"\nsource_kind = "account"\ntarget_kind = "merchant"\ncsv_header = false\n'
+        'csv_delimiter = ";"\n\n[store]\npath = "store"\n')
+    cfg = load_config(config)
+    assert [t.path for t in cfg.tables()] == [str(tmp_path / "logins.tsv"), f"s3://{BUCKET}/mixed/payments.csv"]
+    plan = plan_run(cfg)
+    assert [fp["hashed"] for fp in plan["fingerprint"]] == ["full", "metadata"]
+    result = stage_ingest(cfg, plan)
+    assert result["counts"]["nodes_by_kind"] == {"account": 3, "device": 1, "merchant": 1}
+    assert result["counts"]["edges"] == 4
+
+
 # ------------------------------------------------------------------------------------------------- bad input
 
 def _digest_tree(folder: Path) -> dict[str, str]:
@@ -275,6 +295,15 @@ def no_prefect(monkeypatch):
         raise RuntimeError("preflight let a bad input through to the Prefect flow")
 
     monkeypatch.setattr(cli, "_prefect_env", reached)
+
+
+def _closed_port() -> int:
+    """A port on 127.0.0.1 that nothing listens on (bound, then released)."""
+    import socket
+
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
 
 
 def _missing_package() -> str | None:
@@ -307,6 +336,10 @@ BAD = {
     "no_credentials": (f"s3://{BUCKET}/demo/", None, {"AWS_ACCESS_KEY_ID": None, "AWS_SECRET_ACCESS_KEY": None},
                        rf"s3://{BUCKET}/demo: no credentials found \(.*\); graphkit uses the credentials of the "
                        r"environment"),
+    "unreachable_endpoint": (f"s3://{BUCKET}/demo/transfers.parquet", None,
+                             {"AWS_ENDPOINT_URL": "closed-port", "AWS_MAX_ATTEMPTS": "1"},
+                             rf"s3://{BUCKET}/demo/transfers\.parquet: cannot read from the object store \(Could not "
+                             r"connect to the endpoint URL: .*\); an S3-compatible server is named by AWS_ENDPOINT_URL"),
     "unknown_protocol": ("nosuch://lake/edges/", None, {}, r"nosuch://lake/edges: unknown storage protocol "
                                                            r"'nosuch'"),
     "credentials_in_url": ("s3://AKIAREADER:hunter2-hunter2@lake/edges/", None, {},
@@ -329,6 +362,8 @@ def test_bad_object_storage_input_exits_2_with_one_line_naming_the_url(s3, store
     for name, value in env.items():
         if value is None:
             monkeypatch.delenv(name)
+        elif value == "closed-port":
+            monkeypatch.setenv(name, f"http://127.0.0.1:{_closed_port()}")
         else:
             monkeypatch.setenv(name, value)
     config = _config(tmp_path / "cfg", edges, store=store, labels=labels)
