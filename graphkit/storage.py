@@ -52,7 +52,7 @@ _CREDENTIALS_HINT = {
 _CREDENTIALS_HINT.update(gcs=_CREDENTIALS_HINT["gs"], abfs=_CREDENTIALS_HINT["az"], abfss=_CREDENTIALS_HINT["az"])
 #: Environment variables whose values are secrets (by name), blanked out of every message.
 _SECRET_NAME = re.compile(r"SECRET|TOKEN|PASSWORD|PASSWD|CREDENTIAL|CONNECTION_STRING|ACCOUNT_KEY|SAS|PRIVATE|"
-                          r"ACCESS_KEY", re.I)
+                          r"ACCESS_KEY|SALT", re.I)
 #: Environment variables that decide who an object store sees: a change opens a new connection.
 _ACCESS_ENV = re.compile(r"^(AWS_|GOOGLE_|GCS|CLOUDSDK_|AZURE_|HOME$|FSSPEC_)")
 

@@ -398,9 +398,10 @@ def test_a_refused_run_prints_one_line_and_nothing_at_exit(s3, store, tmp_path):
 def test_secrets_are_blanked_out_of_messages(monkeypatch):
     monkeypatch.setenv("AZURE_STORAGE_ACCOUNT_KEY", "c2VjcmV0LWtleS12YWx1ZQ==")
     monkeypatch.setenv("AWS_SESSION_TOKEN", "session-token-value-123")
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", "pseudonym-key-0042")
     monkeypatch.setenv("AWS_REGION", "eu-central-1")  # not a secret: kept
-    text = "denied for c2VjcmV0LWtleS12YWx1ZQ== with session-token-value-123 in eu-central-1"
-    assert storage.redact(text) == "denied for *** with *** in eu-central-1"
+    text = "denied for c2VjcmV0LWtleS12YWx1ZQ== with session-token-value-123 in eu-central-1 (pseudonym-key-0042)"
+    assert storage.redact(text) == "denied for *** with *** in eu-central-1 (***)"
 
 
 def test_urls_keep_their_form_and_local_paths_stay_paths(tmp_path):
