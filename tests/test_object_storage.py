@@ -201,6 +201,16 @@ def test_a_csv_prefix_with_hive_partitions_reads_like_a_local_folder(s3, tmp_pat
     got = {frozenset((nodes[v], nodes[g.indices[k]])): float(g.weights[k])
            for v in range(g.n_nodes) for k in range(g.indptr[v], g.indptr[v + 1])}
     assert got == pytest.approx({frozenset((s, t)): d["weight"] for s, t, d in ref.edges(data=True)})
+    # the whole refresh over the prefix publishes that graph
+    config = tmp_path / "c.toml"
+    config.write_text(f'[input]\nedges = "s3://{BUCKET}/{prefix}/"\nsource = "customer"\ntarget = "merchant"\n'
+                      'weight = "amount"\ntimestamp = "day"\nuntil = 2026-11-30\n[walks]\nper_node = 2\n'
+                      'length = 10\n[train]\ndim = 8\n[evaluate]\nlink_holdout = 0\n[store]\npath = "store"\n')
+    assert refresh(load_config(config)) == 1
+    [row] = list_versions(tmp_path / "store")
+    assert {k: row["counts"][k] for k in ("rows", "outside_window", "edges", "nodes")} == \
+        {"rows": 6, "outside_window": 2, "edges": ref.number_of_edges(), "nodes": ref.number_of_nodes()}
+    assert [fp["path"] for fp in row["input_fingerprint"]] == [str(f) for f in found.files]
     # a glob over the same prefix picks the same objects; a glob matching none names the URL
     assert gd.list_edge_files(f"s3://{BUCKET}/{prefix}/**/*.csv*")[0] == found.files
     with pytest.raises(EdgeTableError, match=rf"s3://{BUCKET}/{prefix}/\*\*/\*\.tsv: no objects match"):
