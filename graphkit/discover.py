@@ -30,7 +30,7 @@ from __future__ import annotations
 import re
 import urllib.parse
 from dataclasses import dataclass, field
-from pathlib import Path, PurePath
+from pathlib import PurePath
 
 import pyarrow as pa
 import pyarrow.csv as pcsv
