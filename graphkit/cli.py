@@ -759,11 +759,19 @@ def main(argv=None) -> int:
             undo_logging()
 
 
+def _redacted(exc) -> str:
+    """An error's text without the value of any secret-looking environment variable (credentials of an object
+    store, the pseudonym key), whichever library wrote it."""
+    from .storage import redact
+
+    return redact(str(exc))
+
+
 def _dispatch(args) -> int:
     try:
         return args.func(args)
     except InputError as exc:
-        print(f"graphkit: error: {exc}", file=sys.stderr)
+        print(f"graphkit: error: {_redacted(exc)}", file=sys.stderr)
         return 2
     except GateFailure as exc:
         print(f"graphkit: quality gate: {exc}", file=sys.stderr)
@@ -774,7 +782,7 @@ def _dispatch(args) -> int:
     except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, exit 1
         if os.environ.get("GRAPHKIT_DEBUG"):
             raise
-        first = str(exc).splitlines()[0] if str(exc) else ""
+        first = _redacted(exc).splitlines()[0] if str(exc) else ""
         print(f"graphkit: failed: {type(exc).__name__}: {first} (set GRAPHKIT_DEBUG=1 for a traceback)",
               file=sys.stderr)
         return 1

@@ -1,6 +1,7 @@
 """The refresh configuration: a TOML file, validated strictly, with ``--set section.key=value`` overrides.
 
-Paths in the file are relative to the file itself. Unknown keys, wrong types and impossible values are
+Paths in the file are relative to the file itself; an input table's path may instead be an object-store URL
+(``s3://``, ``gs://``, ``az://``..., see :mod:`graphkit.storage`), kept as written. The store is a local folder. Unknown keys, wrong types and impossible values are
 ``ConfigError``\\ s whose message names the file and the key.
 """
 
@@ -16,6 +17,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from . import checks as _b
 from .errors import ConfigError
+from .storage import is_url, location
 
 __all__ = ["RefreshConfig", "CrossKeyError", "load_config", "apply_overrides"]
 
@@ -49,7 +51,8 @@ class TableSection(_Section):
 
     path: str = Field(description="Parquet, CSV or TSV file (text also .gz, .bz2, .lz4, .zst, .zstd), folder (read "
                                   "recursively, hive partitions typed, . and _ names skipped) or glob, relative to "
-                                  "the config.")
+                                  "the config; or an object-store URL (s3://, gs://, az://...) naming an object, a "
+                                  "prefix or a glob.")
     source: str = Field(description="Column holding the source node id.")
     target: str = Field(description="Column holding the target node id.")
     weight: str | None = Field(default=None, description="Optional column holding a positive edge weight.")
@@ -201,7 +204,8 @@ class TrainSection(_Section):
 
 
 class StoreSection(_Section):
-    path: str = Field(description="Folder of the versioned embedding store (relative to the config file).")
+    path: str = Field(description="Folder of the versioned embedding store (relative to the config file); a local "
+                                  "folder, not an object-store URL.")
     keep: int = Field(default=14, ge=1, description="Complete versions kept (plus the current and pinned ones).")
     align: bool = Field(default=True, description="Rotate each new version onto the current one (Procrustes).")
     keep_work_days: float = Field(default=7.0, ge=0, description="Days the stage folders of runs that did not "
@@ -209,6 +213,15 @@ class StoreSection(_Section):
     neighbours: int | None = Field(default=None, ge=_b.NEIGHBOURS_MIN, description="Publish every node's this "
                                    "many nearest neighbours (neighbours.parquet, the view `neighbours`) and their "
                                    "index, which `graphkit similar` then answers from (none: neither).")
+
+    @field_validator("path")
+    @classmethod
+    def _a_local_folder(cls, value):
+        if is_url(value):
+            raise ValueError(f"the store is a local folder (its catalog and versions are renamed into place, "
+                             f"which object stores cannot do atomically), got the URL {value!r}; object-store URLs "
+                             "are for the input tables")
+        return value
 
 
 class EvaluateSection(_Section):
@@ -220,7 +233,8 @@ class EvaluateSection(_Section):
     publish_holdout_model: bool = Field(default=True, description="Publish the vectors trained without the "
                                         "held-out edges (one walk and training pass); false trains a second model "
                                         "on the full graph to publish, doubling the walks and training.")
-    labels: str | None = Field(default=None, description="Parquet table of node labels (several per node allowed).")
+    labels: str | None = Field(default=None, description="Parquet table of node labels (several per node allowed): "
+                                                          "file, folder, glob or object-store URL.")
     label_id_column: str = Field(default="node_id", description="Column of the labels table holding the node id.")
     label_column: str = Field(default="label", description="Column of the labels table holding the label.")
     label_kind: str | None = Field(default=None, description="Node kind the labelled ids belong to.")
@@ -343,6 +357,10 @@ class RefreshConfig(_Section):
 
 
 def _resolve(base: str, p: str) -> str:
+    if is_url(p):  # an object-store URL is absolute already
+        return p
+    if p[:7].lower() == "file://":
+        return str(location(p))
     path = Path(p).expanduser()
     return str(path if path.is_absolute() else (Path(base) / path).resolve())
 

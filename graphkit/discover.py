@@ -13,20 +13,24 @@ file in that folder keep their ``day``): they become columns of every row below 
 as date32, else strings; ``__HIVE_DEFAULT_PARTITION__`` is null), and go through the same column and type checks
 as the files' own columns.
 
+The same rules hold on object stores: a path may be a URL (``s3://bucket/edges/``, ``gs://...``, ``az://...``)
+naming one object, a prefix (read like a folder) or a glob, listed and read through :mod:`graphkit.storage` (fsspec
+behind Arrow), and every message names the URL.
+
 DuckDB reads exactly the files listed here. Text files go to it as the :mod:`pyarrow.dataset` of
 :meth:`Discovery.dataset`, parsed by Arrow with :class:`CsvOptions` (header row or not, delimiter), so that the
 checks and the ingest see the same columns and types; Parquet files go to DuckDB's own reader (faster, and within
-its memory limit), with the partition values typed here joined by file (:meth:`Discovery.partition_table`). A discovery is done once per process and input: called again while the listing,
+its memory limit), with the partition values typed here joined by file (:meth:`Discovery.partition_table`);
+objects, whatever their format, go to it as the Arrow dataset (DuckDB's own object-store reader is not used). A discovery is done once per process and input: called again while the listing,
 sizes and modification times are unchanged, :func:`discover` returns it without reading a file.
 """
 
 from __future__ import annotations
 
-import glob as _glob
 import re
 import urllib.parse
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import PurePath
 
 import pyarrow as pa
 import pyarrow.csv as pcsv
@@ -34,6 +38,7 @@ import pyarrow.dataset as ds
 import pyarrow.fs as pfs
 import pyarrow.parquet as pq
 
+from . import storage
 from .errors import EdgeTableError
 
 __all__ = ["CsvOptions", "Discovery", "discover", "edge_file_format", "list_edge_files", "headerless_name",
@@ -75,7 +80,7 @@ class CsvOptions:
     delimiter: str | None = None
 
 
-def edge_file_format(path: Path) -> str:
+def edge_file_format(path: PurePath) -> str:
     """``"parquet"``, ``"csv"`` or ``"tsv"`` from a file's name (compression endings looked through)."""
     name = path.name.lower()
     for comp in COMPRESSED_SUFFIXES:
@@ -88,74 +93,77 @@ def edge_file_format(path: Path) -> str:
     return "parquet"
 
 
-def _skipped(relative: Path) -> bool:
+def _skipped(relative: PurePath) -> bool:
     return any(part.startswith((".", "_")) for part in relative.parts)
 
 
-def _folder_files(folder: Path) -> list[Path]:
-    selector = pfs.FileSelector(str(folder), recursive=True)
-    out = []
-    for info in pfs.LocalFileSystem().get_file_info(selector):
-        if info.type == pfs.FileType.File:
-            p = Path(info.path)
-            if not _skipped(p.relative_to(folder)):
-                out.append(p)
-    return out
+def _folder_files(folder: PurePath) -> list[storage.Entry]:
+    return [e for e in storage.files_for(folder).walk(folder) if not _skipped(e.path.relative_to(folder))]
 
 
-def _glob_root(pattern: str) -> Path:
+def _glob_root(pattern: PurePath) -> PurePath:
     """The folder a glob's fixed leading part names (where its partition folders start)."""
-    parts = Path(pattern).parts
     fixed = []
-    for part in parts:
+    for part in pattern.parts:
         if any(c in part for c in _GLOB_CHARS):
             break
         fixed.append(part)
-    return Path(*fixed) if fixed else Path(".")
+    return type(pattern)(*fixed) if fixed else type(pattern)(".")
 
 
-def _above_partitions(folder: Path) -> Path:
+def _above_partitions(folder: PurePath) -> PurePath:
     """``folder`` without its trailing ``key=value`` folders: a path inside a partition keeps that column."""
     while _HIVE_SEGMENT.match(folder.name) and folder != folder.parent:
         folder = folder.parent
     return folder
 
 
-def list_edge_files(path: str) -> tuple[list[Path], Path]:
-    """The files an edge table's ``path`` names, sorted, and the folder their partition folders start from.
+def list_edge_files(path: str) -> tuple[list[PurePath], PurePath]:
+    """The files an edge table's ``path`` names, sorted, and the folder their partition folders start from
+    (:class:`pathlib.Path` objects, or :class:`graphkit.storage.ObjectPath` ones for a URL).
 
     Raises
     ------
     EdgeTableError
-        Naming the path: not found, no match, or a folder without a single edge file.
+        Naming the path: not found, no match, or a folder (prefix) without a single edge file; for a URL also a
+        missing bucket, refused credentials or a protocol whose package is not installed.
     """
-    p = Path(path)
-    if any(c in path for c in _GLOB_CHARS):
-        root = _above_partitions(_glob_root(path))
-        files = set()
-        for m in _glob.glob(path, recursive=True):
-            m = Path(m)
-            if m.is_dir():
-                files.update(_folder_files(m))
-            elif m.is_file():
-                files.add(m)
-        files = sorted(f for f in files if not _skipped(f.relative_to(root) if f.is_relative_to(root) else
-                                                        Path(f.name)))
-        if not files:
-            raise EdgeTableError(f"{path}: no files match this pattern")
-        return files, root
-    if p.is_dir():
-        files = sorted(_folder_files(p))
-        if not files:
-            raise EdgeTableError(f"{path}: folder holds no edge files (files and folders starting with . or _ "
-                                 "are skipped)")
-        return files, _above_partitions(p)
-    if not p.exists():
-        raise EdgeTableError(f"{path}: file not found")
-    return [p], _above_partitions(p.parent)
+    entries, root = _list(path)
+    return [e.path for e in entries], root
 
 
-def _partition_values(files: list[Path], root: Path) -> list[dict[str, str | None]]:
+def _list(path: str) -> tuple[list[storage.Entry], PurePath]:
+    """:func:`list_edge_files` with each file's listing entry (size, modification time, entity tag)."""
+    p = storage.location(path)
+    files = storage.files_for(p)
+    remote = storage.is_remote(p)
+    if any(c in str(p) for c in _GLOB_CHARS):
+        root = _above_partitions(_glob_root(p))
+        found = {}
+        for m, entry in files.glob(p):
+            if entry is None:  # a matched folder is read like a folder
+                found.update((e.path, e) for e in _folder_files(m))
+            else:
+                found[m] = entry
+        entries = sorted((e for f, e in found.items() if not _skipped(f.relative_to(root) if f.is_relative_to(root)
+                                                                       else type(f)(f.name))),
+                         key=lambda e: e.path)
+        if not entries:
+            raise EdgeTableError(f"{path}: no {'objects' if remote else 'files'} match this pattern")
+        return entries, root
+    kind = files.kind(p)
+    if kind == "directory":
+        entries = sorted(_folder_files(p), key=lambda e: e.path)
+        if not entries:
+            where = "prefix holds no edge files (objects" if remote else "folder holds no edge files (files"
+            raise EdgeTableError(f"{path}: {where} and folders starting with . or _ are skipped)")
+        return entries, _above_partitions(p)
+    if kind is None:
+        raise EdgeTableError(files.missing(p) if remote else f"{path}: file not found")
+    return (files.stat([p]) if remote else [storage.Entry(p, 0, None)]), _above_partitions(p.parent)
+
+
+def _partition_values(files: list[PurePath], root: PurePath) -> list[dict[str, str | None]]:
     out = []
     for f in files:
         rel = f.relative_to(root).parts[:-1] if f.is_relative_to(root) else ()
@@ -182,16 +190,16 @@ def _partition_type(values: list[str]) -> pa.DataType:
     return pa.string()
 
 
-class _LocalWithZstd(pfs.FileSystemHandler):
-    """The local file system, but ``*.zst`` files open decompressed: Arrow's dataset reader recognises the
-    ``.zstd`` ending only and would read a ``.zst`` file's compressed bytes as text. (Its CSV reader reads a file
-    front to back, so a decompressing stream behind a file handle serves it.)"""
+class _ZstdReading(pfs.FileSystemHandler):
+    """A file system (local, or an object store's), but ``*.zst`` files open decompressed: Arrow's dataset reader
+    recognises the ``.zstd`` ending only and would read a ``.zst`` file's compressed bytes as text. (Its CSV reader
+    reads a file front to back, so a decompressing stream behind a file handle serves it.)"""
 
-    def __init__(self):
-        self.fs = pfs.LocalFileSystem()
+    def __init__(self, fs: pfs.FileSystem):
+        self.fs = fs
 
     def get_type_name(self):
-        return "local+zst"
+        return self.fs.type_name + "+zst"
 
     def normalize_path(self, path):
         return self.fs.normalize_path(path)
@@ -219,25 +227,28 @@ class _LocalWithZstd(pfs.FileSystemHandler):
         open_output_stream = open_append_stream = _read_only
 
 
-def _filesystem(files: list[Path], text: bool) -> pfs.FileSystem:
-    """The file system Arrow opens the files through: the local one, or its ``.zst``-reading wrapper."""
+def _filesystem(files: list[PurePath], text: bool) -> pfs.FileSystem:
+    """The file system Arrow opens the files through (the local one or the object store's, see
+    :mod:`graphkit.storage`), or its ``.zst``-reading wrapper."""
+    fs = storage.files_for(files[0]).arrow
     if text and any(f.name.lower().endswith(".zst") for f in files):
-        return pfs.PyFileSystem(_LocalWithZstd())
-    return pfs.LocalFileSystem()
+        return pfs.PyFileSystem(_ZstdReading(fs))
+    return fs
 
 
 @dataclass
 class Discovery:
     """What :func:`discover` found for one edge table (see the module docstring).
 
-    ``files`` are sorted; ``columns[i]`` maps each column of ``files[i]`` (its own and its partition columns) to
-    its Arrow type; ``partitions`` the partition columns and their inferred types; ``n_rows`` the rows (from the
-    Parquet footers; None for text files).
+    ``files`` are sorted (:class:`pathlib.Path`, or :class:`graphkit.storage.ObjectPath` for a URL);
+    ``columns[i]`` maps each column of ``files[i]`` (its own and its partition columns) to its Arrow type;
+    ``partitions`` the partition columns and their inferred types; ``n_rows`` the rows (from the Parquet footers;
+    None for text files).
     """
 
     path: str
-    files: list[Path]
-    root: Path
+    files: list[PurePath]
+    root: PurePath
     format: str
     csv: CsvOptions
     columns: list[dict[str, pa.DataType]]
@@ -250,6 +261,11 @@ class Discovery:
     def is_text(self) -> bool:
         return self.format != "parquet"
 
+    @property
+    def is_remote(self) -> bool:
+        """The files are objects on a store (read through Arrow, never by DuckDB's own readers)."""
+        return storage.is_remote(self.root)
+
     def file_format(self) -> ds.FileFormat:
         """The Arrow file format the files are read with (text: the options, names by position without a
         header)."""
@@ -260,16 +276,16 @@ class Discovery:
     def filesystem(self) -> pfs.FileSystem:
         return _filesystem(self.files, self.is_text)
 
-    def dataset(self, types: dict[str, pa.DataType], files: list[Path] | None = None) -> ds.Dataset:
+    def dataset(self, types: dict[str, pa.DataType], files: list[PurePath] | None = None) -> ds.Dataset:
         """The files (or some of them) as one Arrow dataset holding the columns ``types`` names, with those types
         (file columns are cast to them, partition columns parsed from the folder names)."""
         schema = pa.schema(list(types.items()))
         partitioning = None
         if self.partitions:
             partitioning = ds.partitioning(pa.schema([(k, t) for k, t in self.partitions.items()]), flavor="hive")
-        return ds.dataset([str(f.resolve()) for f in (self.files if files is None else files)], schema=schema,
+        return ds.dataset([storage.arrow_name(f) for f in (self.files if files is None else files)], schema=schema,
                           format=self.file_format(), filesystem=self.filesystem(), partitioning=partitioning,
-                          partition_base_dir=str(self.root.resolve()))
+                          partition_base_dir=storage.arrow_name(self.root))
 
     def partition_table(self, files: list[str]) -> pa.Table:
         """Each file's partition values, typed: column ``__graphkit_file`` (the names in ``files``, in the order of
@@ -284,14 +300,15 @@ class Discovery:
         """After a scan of text files failed: the message naming the first file that fails alone (and its line,
         for a row with the wrong number of fields), or None when every file reads. Reads the files again, so it
         is only for the error path."""
-        if not self.is_text:
+        if not self.is_text and not self.is_remote:
             return None
         for f in self.files:
             try:
                 for _ in self.dataset(types, [f]).to_batches():
                     pass
             except (pa.ArrowInvalid, pa.ArrowNotImplementedError, OSError, UnicodeDecodeError) as exc:
-                return (_row_width_error(f, exc, self.csv, self.files[0])
+                return (storage.access_error(f, exc)
+                        or _row_width_error(f, exc, self.csv, self.files[0])
                         or _conversion_error(f, exc, list(self.columns[self.files.index(f)]))
                         or f"{f}: cannot read it ({_first_line(exc)})")
         return None
@@ -320,7 +337,7 @@ def _first_line(exc) -> str:
     return text.splitlines()[0] if text else type(exc).__name__
 
 
-def _row_width_error(file: Path, exc, options: CsvOptions, first_file: Path | None = None) -> str | None:
+def _row_width_error(file: PurePath, exc, options: CsvOptions, first_file: PurePath | None = None) -> str | None:
     """The one-line message for a text file whose rows do not have the header's number of fields (without a header:
     line 1 of ``first_file``, the table's first file), or None when ``exc`` is about something else."""
     m = _ARROW_ROW.search(str(exc))
@@ -337,7 +354,7 @@ def _row_width_error(file: Path, exc, options: CsvOptions, first_file: Path | No
             f"{options.delimiter or 'by the file ending'!r}){hint}")
 
 
-def _conversion_error(file: Path, exc, names: list[str]) -> str | None:
+def _conversion_error(file: PurePath, exc, names: list[str]) -> str | None:
     """The one-line message for a text value that does not parse as its column's type, or None."""
     m = _ARROW_CONVERSION.search(str(exc))
     if not m:
@@ -348,32 +365,33 @@ def _conversion_error(file: Path, exc, names: list[str]) -> str | None:
             "MiB of the file, from which its type is taken")
 
 
-def _file_schema(f: Path, fmt: str, csv: CsvOptions, fs, width: int | None,
-                 first_file: Path | None = None) -> tuple[pa.Schema, int | None]:
+def _file_schema(f: PurePath, fmt: str, csv: CsvOptions, fs, width: int | None,
+                 first_file: PurePath | None = None) -> tuple[pa.Schema, int | None]:
     """One file's own columns (a Parquet footer; a text file's first block) and its row count (Parquet only)."""
     if fmt == "parquet":
         try:
-            meta = pq.read_metadata(f)
+            meta = pq.read_metadata(storage.arrow_name(f), filesystem=fs)
             return meta.schema.to_arrow_schema(), meta.num_rows
         except (pa.ArrowInvalid, OSError) as exc:
-            raise EdgeTableError(f"{f}: not a readable Parquet file ({_first_line(exc)}; files not ending in "
+            raise EdgeTableError(storage.access_error(f, exc) or
+                                 f"{f}: not a readable Parquet file ({_first_line(exc)}; files not ending in "
                                  ".csv or .tsv are read as Parquet)") from None
-    fragment = _csv_format(fmt, csv, width).make_fragment(str(f.resolve()), filesystem=fs)
+    fragment = _csv_format(fmt, csv, width).make_fragment(storage.arrow_name(f), filesystem=fs)
     try:
         return fragment.physical_schema, None
     except (pa.ArrowInvalid, OSError, UnicodeDecodeError) as exc:
-        message = _row_width_error(f, exc, csv, first_file)
+        message = storage.access_error(f, exc) or _row_width_error(f, exc, csv, first_file)
         if message:
             raise EdgeTableError(message) from None
         raise EdgeTableError(f"{f}: not a readable {fmt.upper()} file ({_first_line(exc)})") from None
 
 
-def _stamp(files: list[Path]) -> tuple:
-    out = []
-    for f in files:
-        st = f.stat()
-        out.append((str(f), st.st_size, st.st_mtime_ns))
-    return tuple(out)
+def _stamp(entries: list[storage.Entry]) -> tuple:
+    """What a discovery depends on: each file's path, size and modification time (objects: and entity tag, from
+    the listing just made; local files: from a fresh ``stat``)."""
+    if entries and storage.is_remote(entries[0].path):
+        return tuple((str(e.path), e.size, e.mtime_ns, e.etag) for e in entries)
+    return tuple((str(e.path), e.size, e.mtime_ns) for e in storage.stat_files([e.path for e in entries]))
 
 
 #: Discoveries made in this process, by (path, CSV options); reused while the files' listing and stats hold.
@@ -386,7 +404,7 @@ def discover(path: str, csv: CsvOptions = CsvOptions()) -> Discovery:
     Parameters
     ----------
     path : str
-        A file, folder or glob (see the module docstring).
+        A file, folder or glob, or a URL naming an object, a prefix or a glob (see the module docstring).
     csv : CsvOptions
         How text files are parsed.
 
@@ -398,11 +416,13 @@ def discover(path: str, csv: CsvOptions = CsvOptions()) -> Discovery:
     ------
     EdgeTableError
         Naming the path, folder or file: nothing found, formats mixed in one table, an unreadable file, a text
-        line with more or fewer fields than the header row, a column both in a file and a partition folder.
+        line with more or fewer fields than the header row, a column both in a file and a partition folder; for a
+        URL also a missing bucket or object, refused credentials, a protocol whose package is missing.
     """
-    files, root = list_edge_files(path)
+    entries, root = _list(path)
+    files = [e.path for e in entries]
     key = (path, csv)
-    stamp = _stamp(files)
+    stamp = _stamp(entries)
     known = _DISCOVERED.get(key)
     if known is not None and known.stamp == stamp:
         return known

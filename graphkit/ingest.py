@@ -24,6 +24,7 @@ from .faults import fault_point
 from .graph import AdjacencyArrays
 from .io import digest, fingerprint_files, write_json_atomic
 from .sql import bind, inline, load_sql, quote_ident, sql_literal, work_connection
+from .storage import redact
 
 __all__ = ["EdgeTable", "check_edge_tables", "check_edge_table", "validate_edge_tables", "ingest_tables",
            "ingest_edges"]
@@ -212,9 +213,10 @@ def _fetch_adjacency(result, n_nodes: int, n_entries: int, weighted: bool):
 
 def _table_rows(con, t: EdgeTable, found: Discovery, id_type: str, keep: list):
     """A relation over one table's rows: DuckDB's own reader over the discovered Parquet files (its speed and its
-    memory limit), joined to the partition values discovery typed; text files as the Arrow dataset discovery
-    parses them. Objects the relation reads from are appended to ``keep``."""
-    if found.is_text:
+    memory limit), joined to the partition values discovery typed; text files, and every table on an object
+    store, as the Arrow dataset discovery builds (fsspec behind Arrow: DuckDB's own object-store reader is never
+    used). Objects the relation reads from are appended to ``keep``."""
+    if found.is_text or found.is_remote:
         dataset = found.dataset(_scan_types(t, found, id_type))
         keep.append(dataset)
         return con.from_arrow(dataset)
@@ -258,7 +260,7 @@ def _read_error(tables: list[EdgeTable], id_type: str, where: str, exc) -> EdgeT
                 return EdgeTableError(message)
     except Exception:  # noqa: BLE001 - building an error message must not fail; the scan's own reason is shown
         pass
-    return EdgeTableError(f"{where}: cannot read the edge table ({_first_line(exc)})")
+    return EdgeTableError(f"{where}: cannot read the edge table ({redact(_first_line(exc))})")
 
 
 def _examples(con, check: str) -> list[tuple]:

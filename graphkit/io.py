@@ -1,5 +1,8 @@
 """File helpers: resolving input paths, fingerprints, atomic writes and manifests.
 
+Input paths may be object-store URLs (see :mod:`graphkit.storage`): :func:`resolve_input_files` lists them with
+the same rules, and :func:`fingerprint_files` describes an object by its metadata, never by its content.
+
 Every file graphkit writes whole goes through :func:`atomic_output`, which has the one durability rule: write
 aside under a hidden name in the same folder (``.NAME.tmp-<random>``), flush and fsync the file, ``os.replace`` it
 onto its name, fsync the folder. A reader sees the old file or the new one, never half of one, and after a crash
@@ -9,16 +12,16 @@ removed); an aside file left by a killed process matches ``*.tmp-*``, the patter
 
 from __future__ import annotations
 
-import glob as _glob
 import hashlib
 import json
 import os
 import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
-from pathlib import Path
+from pathlib import Path, PurePath
 from typing import Any
 
+from . import storage
 from .errors import EdgeTableError
 
 __all__ = ["resolve_input_files", "fingerprint_files", "digest", "atomic_output", "aside_path", "fsync_file",
@@ -30,41 +33,58 @@ _EDGE_BYTES = 1 << 20  # head and tail hashed for the files past the budget (a P
 FULL_HASH_BUDGET = 2 << 30
 
 
-def resolve_input_files(pattern: str, *, suffixes=(".parquet",)) -> list[Path]:
-    """The files an ``edges`` setting names: one file, every matching file under a folder, or a glob.
+def resolve_input_files(pattern: str, *, suffixes=(".parquet",)) -> list[PurePath]:
+    """The files a table setting names: one file, every file with one of ``suffixes`` under a folder, or a glob
+    (its matching files); local paths or object-store URLs (:class:`graphkit.storage.ObjectPath` then, whose
+    ``str`` is the URL; open them through :func:`graphkit.storage.files_for`).
 
     Raises
     ------
     EdgeTableError
-        When nothing matches, naming the path.
+        When nothing matches, naming the path (for a URL also a missing bucket, refused credentials, a protocol
+        whose package is missing).
     """
-    p = Path(pattern)
-    if any(c in pattern for c in _GLOB_CHARS):
-        files = sorted(Path(f) for f in _glob.glob(pattern, recursive=True) if Path(f).is_file())
-        if not files:
-            raise EdgeTableError(f"{pattern}: no files match this pattern")
-        return files
-    if p.is_dir():
-        files = sorted(f for f in p.rglob("*") if f.is_file() and f.suffix in suffixes and not f.name.startswith("."))
-        if not files:
-            raise EdgeTableError(f"{pattern}: folder holds no {'/'.join(suffixes)} files")
-        return files
-    if not p.exists():
-        raise EdgeTableError(f"{pattern}: file not found")
+    p = storage.location(pattern)
+    files = storage.files_for(p)
+    remote = storage.is_remote(p)
+    if any(c in str(p) for c in _GLOB_CHARS):
+        found = sorted(m for m, entry in files.glob(p) if entry is not None)
+        if not found:
+            raise EdgeTableError(f"{pattern}: no {'objects' if remote else 'files'} match this pattern")
+        return found
+    kind = files.kind(p)
+    if kind == "directory":
+        found = sorted(e.path for e in files.walk(p) if e.path.suffix in suffixes and not e.path.name.startswith("."))
+        if not found:
+            raise EdgeTableError(f"{pattern}: {'prefix' if remote else 'folder'} holds no {'/'.join(suffixes)} "
+                                 f"{'objects' if remote else 'files'}")
+        return found
+    if kind is None:
+        raise EdgeTableError(files.missing(p) if remote else f"{pattern}: file not found")
     return [p]
 
 
 def fingerprint_files(files, *, full_hash_budget: int = FULL_HASH_BUDGET) -> list[dict[str, Any]]:
-    """Path, size, modification time (ns) and a SHA-256 of the content of each file, in order.
+    """Path, size, modification time (ns) and a SHA-256 of the content of each file, in order; for an object on
+    a store (:class:`graphkit.storage.ObjectPath`) its URL, size, modification time and entity tag, from the
+    store's metadata (``"hashed": "metadata"``: nothing is downloaded; the tag changes with the content).
 
-    The files are hashed in full while their sizes add up to at most ``full_hash_budget`` bytes; a file past that
+    Local files are hashed in full while their sizes add up to at most ``full_hash_budget`` bytes; a file past that
     budget gets a hash of its first and last MiB (``"hashed": "edges"``) and relies on its size and modification
     time for the rest. Any edit therefore changes the fingerprint: a same-size edit changes the mtime, and within
     the budget also the hash (an edit that keeps size and mtime, as ``cp -p`` or ``rsync -t`` of other content can).
     """
+    files = list(files)
+    objects = [f for f in files if storage.is_remote(f)]
+    meta = dict(zip(objects, storage.stat_files(objects)))
     out = []
     left = full_hash_budget
     for f in files:
+        if storage.is_remote(f):
+            e = meta[f]
+            out.append({"path": str(f), "size": e.size, "mtime_ns": e.mtime_ns, "etag": e.etag,
+                        "hashed": "metadata"})
+            continue
         f = Path(f)
         st = f.stat()
         size = st.st_size

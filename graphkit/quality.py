@@ -41,20 +41,23 @@ def make_holdout(graph_dir, out_dir, *, fraction: float, seed: int, max_edges: i
 def check_labels_table(path: str, *, id_column: str, label_column: str, kind: str | None = None,
                        kinds=None) -> list:
     """The checks on a labels table that need no graph: its files exist and are Parquet, the two columns exist,
-    and ``kind`` is one of the node kinds the edge tables produce (``kinds``). Returns the files.
+    and ``kind`` is one of the node kinds the edge tables produce (``kinds``). Returns the files (local paths, or
+    objects for a URL: see :mod:`graphkit.storage`).
 
     Raises
     ------
     EdgeTableError
-        Naming the file and the ``[evaluate]`` key at fault.
+        Naming the file (the URL) and the ``[evaluate]`` key at fault.
     """
+    from . import storage
     from .io import resolve_input_files
 
     files = resolve_input_files(path)
     try:
-        schema = pq.read_schema(files[0])
+        schema = pq.read_schema(storage.arrow_name(files[0]), filesystem=storage.files_for(files[0]).arrow)
     except (OSError, pa.ArrowException) as exc:
-        raise EdgeTableError(f"{files[0]}: [evaluate] labels is not a readable Parquet file "
+        raise EdgeTableError(storage.access_error(files[0], exc) or
+                             f"{files[0]}: [evaluate] labels is not a readable Parquet file "
                              f"({(str(exc).strip() or type(exc).__name__).splitlines()[0]})") from None
     for key, col in (("label_id_column", id_column), ("label_column", label_column)):
         if col not in schema.names:
@@ -64,6 +67,14 @@ def check_labels_table(path: str, *, id_column: str, label_column: str, kind: st
         raise EdgeTableError(f"[evaluate] label_kind = {kind!r} is not a node kind of the edge tables "
                              f"(kinds: {', '.join(sorted(kinds))})")
     return files
+
+
+def _first_line(exc) -> str:
+    try:
+        text = str(exc).strip()
+    except Exception:  # noqa: BLE001 - building an error message must not fail
+        text = ""
+    return text.splitlines()[0][:300] if text else type(exc).__name__
 
 
 def load_labels(path: str, nodes_parquet, *, id_column: str, label_column: str,
@@ -77,11 +88,18 @@ def load_labels(path: str, nodes_parquet, *, id_column: str, label_column: str,
     """
     import duckdb
 
+    from . import storage
     from .sql import load_sql
 
     files = check_labels_table(path, id_column=id_column, label_column=label_column)
     # The two columns are read by name with Arrow and renamed, so no column name is ever written into SQL text.
-    table = pq.ParquetDataset([str(f) for f in files]).read(columns=[id_column, label_column])
+    try:
+        table = pq.ParquetDataset([storage.arrow_name(f) for f in files],
+                                  filesystem=storage.files_for(files[0]).arrow).read(columns=[id_column, label_column])
+    except (OSError, pa.ArrowException) as exc:
+        raise EdgeTableError(storage.access_error(files[0], exc) or
+                             f"{path}: [evaluate] labels cannot be read ({storage.redact(_first_line(exc))})"
+                             ) from None
     as_text = [pc.cast(table.column(c), pa.string()) for c in (id_column, label_column)]
     labels = pa.table({"label_row": pa.array(np.arange(table.num_rows, dtype=np.int64)),
                        "label_node_id": as_text[0], "label": as_text[1]})

@@ -137,6 +137,15 @@ BAD_SETS = {
     "csv_delimiter_quote": (["input.csv_delimiter='\"'"], r"\[input\] csv_delimiter: '\"' cannot separate fields"),
     "csv_header_not_bool": (['input.csv_header="no"'], r"--set input.csv_header: \[input\] csv_header: input "
                                                        r"should be a valid boolean"),
+    # object-store URLs that need no server to refuse (the others: tests/test_object_storage.py)
+    "store_on_object_storage": (['store.path="s3://night-lake/store"'],
+                                r"--set store.path: \[store\] path: the store is a local folder"),
+    "edges_unknown_protocol": (['input.edges="nosuch://night-lake/edges/"'],
+                               r"nosuch://night-lake/edges: unknown storage protocol 'nosuch'"),
+    "edges_url_with_credentials": (['input.edges="s3://AKIAREADER:hunter2-hunter2@night-lake/edges/"'],
+                                   r"s3://\*\*\*@night-lake/edges/: credentials in a URL are refused"),
+    "labels_unknown_protocol": (['evaluate.labels="nosuch://night-lake/labels.parquet"'],
+                                r"nosuch://night-lake/labels\.parquet: unknown storage protocol"),
 }
 
 
