@@ -14,7 +14,10 @@ from __future__ import annotations
 
 import time
 from contextlib import contextmanager, nullcontext
+from datetime import datetime
 from typing import Any, Callable
+
+from graphkit import progress
 
 __all__ = ["si", "duration", "stage_summary", "run_markdown", "LogProgress", "ConsoleProgress", "console_progress",
            "listen"]
@@ -200,6 +203,9 @@ class LogProgress:
             return
         rate = _rate(done - st["done0"], now - st["t0"])
         left = f", {duration((total - done) / rate)} left" if rate > 0 and not final else ""
+        finish = progress.finish_time(stage, (total - done) / rate) if rate > 0 and not final else None
+        if finish is not None:  # a budgeted run: when the whole run is predicted to end, at this rate
+            left += f", run finish predicted at {datetime.fromtimestamp(finish).strftime('%H:%M:%S')}"
         share = 100.0 * done / total if total else 100.0
         self.logger.info("%s: %.0f%% (%s of %s %s), %s %s/s%s", stage, share, si(done), si(total), unit, si(rate),
                          unit, left)

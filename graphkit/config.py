@@ -294,6 +294,12 @@ class DaskSection(_Section):
         return self
 
 
+class BudgetSection(_Section):
+    minutes: float | None = Field(default=None, gt=0, le=10_080, description="Size the run to finish within this "
+                                  "many minutes of wall time from its start: walks.per_node and train.epochs become "
+                                  "upper bounds and the run picks what fits (docs/budget.md).")
+
+
 class RefreshConfig(_Section):
     """The whole resolved configuration; ``base_dir`` is the folder relative paths are resolved against."""
 
@@ -304,6 +310,7 @@ class RefreshConfig(_Section):
     dask: DaskSection = DaskSection()
     evaluate: EvaluateSection = EvaluateSection()
     gates: GatesSection = GatesSection()
+    budget: BudgetSection = BudgetSection()
     base_dir: str = "."
     source_file: str = "<config>"
 

@@ -22,6 +22,7 @@ from __future__ import annotations
 import logging
 import os
 import sys
+from datetime import datetime
 from typing import Any
 
 __all__ = ["LEVELS", "RUN_LOGGER", "stage_line", "configure", "adopt_prefect_console", "ExpectedOutcomeFilter"]
@@ -78,6 +79,15 @@ def _figure(stage: str, result: Any) -> str:
         return f"{_si(result.get('n_tokens', 0))} tokens, {_si(rate)} tokens/s"
     if kind == "train":
         return f"{_si(result.get('tokens_per_second', 0))} tokens/s, dim {result.get('dim')}"
+    if stage == "budget":
+        bounds = result.get("bounds", {})
+        try:  # the console's clock: local time, like the log lines' own
+            finish = datetime.fromisoformat(result["predicted_finish"]).astimezone().strftime("%H:%M:%S")
+        except (KeyError, TypeError, ValueError):
+            finish = "?"
+        return (f"per_node {result.get('per_node')} of {bounds.get('per_node')}, epochs {result.get('epochs')} of "
+                f"{bounds.get('epochs')}, finish predicted at {finish} "
+                f"({_duration(float(result.get('predicted_total_seconds') or 0))} of {result.get('minutes'):g} min)")
     if stage == "evaluate":
         metrics = result.get("metrics", {})
         shown = [f"{label} {metrics[key]:.4f}" for key, label in _EVALUATE_FIGURES

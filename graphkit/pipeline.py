@@ -115,6 +115,18 @@ class RunClock:
         self.flow_start = now
         self.during = {}
         self.row_at = None
+        from . import progress
+
+        progress.predict_finish(None)  # a finish predicted for an earlier run of this process
+
+    def elapsed(self) -> float:
+        """Seconds since the run started: the process's start for a command, else the flow's (0 outside a run)."""
+        now = time.time()
+        if self.command_start is not None:  # before the flow: the command's own clock
+            return max(now - self.command_start, 0.0)
+        if self.flow_start is None:
+            return 0.0
+        return sum(self.before.values()) + max(now - self.flow_start, 0.0)
 
     def row_timings(self, stage_seconds: float) -> dict[str, float]:
         """The entries beyond the stages' own seconds, frozen now (just before the version row is written)."""
@@ -219,7 +231,38 @@ def preflight(cfg: RefreshConfig, as_of: datetime | None = None) -> dict[str, An
         check_labels_table(cfg.labels_path, id_column=cfg.evaluate.label_id_column,
                            label_column=cfg.evaluate.label_column, kind=cfg.evaluate.label_kind,
                            kinds={k for t in cfg.tables() for k in (t.source_kind, t.target_kind)})
+    if cfg.budget.minutes is not None:
+        _check_budget_from_lineage(cfg, int((info.get("counts") or {}).get("rows") or 0))
     return info
+
+
+def _check_budget_from_lineage(cfg: RefreshConfig, rows_now: int) -> None:
+    """Refuse a budget below the smallest sizing before any work, when the store's newest matching version can
+    predict the run (its node count and the stages before the sizing scaled by the input's row count)."""
+    from . import budget
+    from .store import CATALOG, list_versions
+
+    if not (cfg.store_path / CATALOG).exists():
+        return
+    rows = list_versions(cfg.store_path)
+    walks, train = cfg.walks.model_dump(), cfg.train.model_dump()
+    for row in sorted(rows, key=lambda r: -r["version"]):
+        counts, timings = row.get("counts") or {}, row.get("timings") or {}
+        if not counts.get("rows") or not counts.get("nodes") or not rows_now:
+            continue
+        scale = rows_now / counts["rows"]
+        n_nodes = max(int(counts["nodes"] * scale), 1)
+        costs = budget.costs_from_lineage([row], walks, train, n_nodes)
+        if costs is None:
+            continue
+        before = sum(float(timings.get(k) or 0) for k in ("server_start", "ingest", "graph", "holdout", "plan",
+                                                           "lock_wait"))
+        elapsed = RUN_CLOCK.elapsed() + before * scale
+        budget.choose_sizing(minutes=cfg.budget.minutes, elapsed=elapsed, n_nodes=n_nodes, length=cfg.walks.length,
+                             passes=2 if _passes_twice(cfg) else 1, costs=costs, max_per_node=cfg.walks.per_node,
+                             max_epochs=cfg.train.epochs,
+                             where=f"from version {row['version']} of the store, scaled to {rows_now:,} rows")
+        return
 
 
 #: A manual run resumes an unfinished run of the same input only while that run's ``as_of`` is younger than this.
@@ -285,27 +328,18 @@ def plan_run(cfg: RefreshConfig, as_of: datetime | None = None, *, now: datetime
         from .store import current_version
 
         warm_from = current_version(store)
-
-    def chain(graph_key: str) -> tuple[str, str]:
-        walks_key = digest({"graph": graph_key, "walks": cfg.walks.model_dump()})
-        train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads", "memmap"}),
-                            "warm_from": warm_from})
-        return str(work / f"walks-{walks_key}"), str(work / f"train-{train_key}")
-
-    ingest_dir = work / f"ingest-{ingest_key}"
-    walks_dir, train_dir = chain(ingest_key)
     ev = cfg.evaluate
-    holdout = {}
+    holdout_key = None
     if ev.link_holdout > 0:
         holdout_key = digest({"ingest": ingest_key, "fraction": ev.link_holdout, "seed": ev.seed,
                               "max_edges": ev.max_holdout_edges})
-        eval_walks, eval_train = chain(holdout_key)
-        holdout = {"holdout_dir": str(work / f"holdout-{holdout_key}"), "eval_walks_dir": eval_walks,
-                   "eval_train_dir": eval_train}
-    graph_dir = str(ingest_dir / "graph")
-    if holdout and ev.publish_holdout_model:  # one run: the published vectors are the evaluated ones
-        graph_dir = str(Path(holdout["holdout_dir"]) / "graph")
-        walks_dir, train_dir = holdout["eval_walks_dir"], holdout["eval_train_dir"]
+    keys = {"ingest": ingest_key, "holdout": holdout_key, "warm_from": warm_from}
+    ingest_dir = work / f"ingest-{ingest_key}"
+    budget_dir = {}
+    if cfg.budget.minutes is not None:  # keyed by the bounds: a rerun finds the sizing its first attempt chose
+        budget_key = digest({**keys, "budget": cfg.budget.model_dump(), "walks": cfg.walks.model_dump(),
+                             "train": cfg.train.model_dump()})
+        budget_dir = {"budget_dir": str(work / f"budget-{budget_key}")}
     return {
         "store": str(store),
         "work": str(work),
@@ -315,13 +349,34 @@ def plan_run(cfg: RefreshConfig, as_of: datetime | None = None, *, now: datetime
         "as_of_source": as_of_source,
         "run_record": str(record),
         "ingest_dir": str(ingest_dir),
-        "graph_dir": graph_dir,
-        "walks_dir": walks_dir,
-        "train_dir": train_dir,
-        **holdout,
+        "keys": keys,
+        **budget_dir,
+        **model_dirs(cfg, work, keys),
         "params": cfg.to_public_dict(),
         "window": {k: (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in window.items()},
     }
+
+
+def model_dirs(cfg: RefreshConfig, work: Path, keys: dict) -> dict[str, str]:
+    """The graph, walks and train folders of the published model and, with a holdout, of the evaluation model,
+    keyed by the input and the parameters each stage depends on (``keys``: the plan's ingest and holdout keys and
+    the version a warm start starts from)."""
+    def chain(graph_key: str) -> tuple[str, str]:
+        walks_key = digest({"graph": graph_key, "walks": cfg.walks.model_dump()})
+        train_key = digest({"walks": walks_key, "train": cfg.train.model_dump(exclude={"threads", "memmap"}),
+                            "warm_from": keys["warm_from"]})
+        return str(work / f"walks-{walks_key}"), str(work / f"train-{train_key}")
+
+    walks_dir, train_dir = chain(keys["ingest"])
+    out = {"graph_dir": str(work / f"ingest-{keys['ingest']}" / "graph"), "walks_dir": walks_dir,
+           "train_dir": train_dir}
+    if keys["holdout"] is not None:
+        holdout_dir = work / f"holdout-{keys['holdout']}"
+        eval_walks, eval_train = chain(keys["holdout"])
+        out.update(holdout_dir=str(holdout_dir), eval_walks_dir=eval_walks, eval_train_dir=eval_train)
+        if cfg.evaluate.publish_holdout_model:  # one run: the published vectors are the evaluated ones
+            out.update(graph_dir=str(holdout_dir / "graph"), walks_dir=eval_walks, train_dir=eval_train)
+    return out
 
 
 def stage_ingest(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
@@ -569,6 +624,8 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
         metrics["walk_diagnostics"] = walks["diagnostics"]
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
                "hashed_ids": cfg.input.hash_ids, "alignment": alignment}
+    if plan.get("budget"):
+        lineage["budget"] = plan["budget"]
     reasons = failed_gates(metrics, cfg.gates)
     figures = _report_figures(cfg, plan)
     rows = list_versions(plan["store"]) if Path(plan["store"], "catalog.duckdb").exists() else []
@@ -579,6 +636,9 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
                             counts=counts, metrics=metrics, timings=timings, vectors=None if reasons else vectors)
     RUN_CLOCK.add("report", time.time() - t0)
     timings.update(RUN_CLOCK.row_timings(sum(timings.values())))
+    if plan.get("budget"):  # prediction beside outcome, for the stages the sizing predicted
+        lineage["budget"] = {**plan["budget"], "actual": {k: timings.get(k) for k in plan["budget"]["predicted"]
+                                                          if k in timings}}
     if RUN_CLOCK.flow_start is not None:
         timings["after_publish_estimate"] = round(RUN_CLOCK.tail_estimate(plan["store"]), 3)
     record = dict(params={**plan["params"], "lineage": lineage}, fingerprint=plan["fingerprint"], counts=counts,
@@ -716,7 +776,8 @@ def finish_run(plan: dict) -> list[str]:
     corpus can be large), and the folders and records of unfinished runs older than ``[store] keep_work_days``.
     Returns the removed paths."""
     removed = []
-    for key in ("ingest_dir", "walks_dir", "train_dir", "holdout_dir", "eval_walks_dir", "eval_train_dir"):
+    for key in ("ingest_dir", "walks_dir", "train_dir", "holdout_dir", "eval_walks_dir", "eval_train_dir",
+                "budget_dir"):
         if plan.get(key) and Path(plan[key]).exists():
             shutil.rmtree(plan[key], ignore_errors=True)
             removed.append(plan[key])
@@ -760,6 +821,64 @@ def _second_pass(cfg: RefreshConfig, plan: dict) -> bool:
     return _has_holdout(cfg, plan) and not cfg.evaluate.publish_holdout_model
 
 
+def _passes_twice(cfg: RefreshConfig) -> bool:
+    """A separate evaluation model is walked and trained besides the published one."""
+    return cfg.evaluate.link_holdout > 0 and not cfg.evaluate.publish_holdout_model
+
+
+def _has_budget(cfg: RefreshConfig, plan: dict) -> bool:
+    return bool(plan.get("budget_dir"))
+
+
+def stage_budget(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
+    """Size the run to ``[budget] minutes`` (:mod:`graphkit.budget`): the walks per node and epochs the rest of the
+    budget affords, from the store's lineage or a short calibration on the graph; writes ``sizing.json``."""
+    from . import budget
+    from .store import CATALOG, list_versions
+
+    t0 = time.perf_counter()
+    n_nodes = graph_nodes(plan)
+    walks, train = cfg.walks.model_dump(), cfg.train.model_dump()
+    store = Path(plan["store"])
+    rows = list_versions(store) if (store / CATALOG).exists() else []
+    costs, calibration = budget.costs_from_lineage(rows, walks, train, n_nodes), 0.0
+    if costs is None:
+        costs, calibration = budget.calibrate(AdjacencyArrays.load(plan["graph_dir"]), walks, train, cfg.walks.seed)
+    elapsed = RUN_CLOCK.elapsed()
+    passes = 2 if _second_pass(cfg, plan) else 1
+    sizing = budget.choose_sizing(minutes=cfg.budget.minutes, elapsed=elapsed, n_nodes=n_nodes,
+                                  length=cfg.walks.length, passes=passes, costs=costs,
+                                  max_per_node=cfg.walks.per_node, max_epochs=cfg.train.epochs)
+    finish = time.time() + sizing.predicted_seconds
+    result = {"minutes": cfg.budget.minutes, "per_node": sizing.per_node, "epochs": sizing.epochs,
+              "bounds": {"per_node": cfg.walks.per_node, "epochs": cfg.train.epochs},
+              "nodes": n_nodes, "passes": passes, "costs": costs.to_dict(),
+              "calibration_seconds": round(calibration, 3), "elapsed_at_sizing": round(elapsed, 3),
+              "predicted": sizing.predicted,
+              "predicted_total_seconds": round(elapsed + sizing.predicted_seconds, 3),
+              "predicted_finish": datetime.fromtimestamp(finish, timezone.utc).isoformat(timespec="seconds"),
+              "seconds": round(time.perf_counter() - t0, 3)}
+    out = Path(plan["budget_dir"])
+    out.mkdir(parents=True, exist_ok=True)
+    write_json_atomic(out / "sizing.json", result)
+    return result
+
+
+def apply_sizing(cfg: RefreshConfig, plan: dict, sizing: dict) -> RefreshConfig:
+    """The config the rest of the run uses: ``walks.per_node`` and ``train.epochs`` as the budget chose them.
+    Updates the plan in place (its walk and train folders, the recorded parameters, the decision)."""
+    sized = cfg.model_copy(update={"walks": cfg.walks.model_copy(update={"per_node": int(sizing["per_node"])}),
+                                   "train": cfg.train.model_copy(update={"epochs": int(sizing["epochs"])})})
+    plan.update(model_dirs(sized, Path(plan["work"]), plan["keys"]))
+    plan["params"] = sized.to_public_dict()
+    plan["budget"] = {k: v for k, v in sizing.items() if k != "skipped"}
+    from . import progress
+    from .budget import seconds_after
+
+    progress.predict_finish(seconds_after(sizing["predicted"]))
+    return sized
+
+
 @dataclass(frozen=True)
 class Stage:
     """One step of the refresh, as data: what runs, on which earlier results, and how a rerun knows it is done.
@@ -783,6 +902,9 @@ class Stage:
         Extra attempts after an I/O failure, under Prefect (the plain runner does not retry).
     clock : bool
         Add the stage's seconds to :data:`RUN_CLOCK` (for stages whose result :func:`stage_publish` does not get).
+    adjusts : callable or None
+        ``adjusts(cfg, plan, result) -> cfg``: the config the later stages get, for a stage that decides
+        parameters (the budget's sizing); it may update the plan in place.
     """
 
     name: str
@@ -793,6 +915,7 @@ class Stage:
     when: Callable[[RefreshConfig, dict], bool] | None = None
     retries: int = 0
     clock: bool = False
+    adjusts: Callable[[RefreshConfig, dict, Any], RefreshConfig] | None = None
 
     def marker_path(self, plan: dict) -> Path | None:
         if self.marker is None or not plan.get(self.folder):
@@ -809,6 +932,8 @@ STAGES: tuple[Stage, ...] = (
     Stage("ingest", stage_ingest, folder="ingest_dir", marker="ingest.json", retries=2),
     Stage("graph", stage_graph),
     Stage("holdout", stage_holdout, folder="holdout_dir", marker="holdout.json", when=_has_holdout),
+    Stage("budget", stage_budget, folder="budget_dir", marker="sizing.json", when=_has_budget, clock=True,
+          adjusts=apply_sizing),
     Stage("eval_walks", stage_eval_walks, folder="eval_walks_dir", marker="manifest.json", when=_second_pass,
           clock=True),
     Stage("eval_train", stage_eval_train, folder="eval_train_dir", marker="train.json", when=_second_pass,
@@ -890,6 +1015,8 @@ def run_stages(cfg: RefreshConfig, plan: dict, *, call: Callable[..., Any] | Non
             status, shown = "ran", {"version": result, "seconds": seconds}
         record[stage.name] = {"status": status, "seconds": seconds, "result": shown}
         log.info("%s", stage_line(stage.name, result, seconds))
+        if stage.adjusts is not None:
+            cfg = stage.adjusts(cfg, plan, result)
     return results
 
 

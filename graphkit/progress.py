@@ -6,9 +6,29 @@ import warnings
 from contextlib import contextmanager
 from contextvars import ContextVar
 
-__all__ = ["report", "listen"]
+__all__ = ["report", "listen", "quiet", "predict_finish", "finish_time"]
 
 _SINKS: ContextVar[tuple] = ContextVar("graphkit_progress_sinks", default=())
+
+
+#: The run's predicted timeline (process-wide, set by the budget's sizing): seconds predicted after each stage.
+_AFTER: dict[str, float] = {}
+
+
+def predict_finish(after: dict[str, float] | None) -> None:
+    """Record the seconds predicted to follow each stage (``{"train": 60.0, ...}``), or forget them (None)."""
+    _AFTER.clear()
+    _AFTER.update(after or {})
+
+
+def finish_time(stage: str, seconds_left: float) -> float | None:
+    """The run's predicted finish (epoch seconds) when ``stage`` has ``seconds_left`` to go; None without a
+    prediction for that stage."""
+    import time
+
+    if stage not in _AFTER:
+        return None
+    return time.time() + max(float(seconds_left), 0.0) + _AFTER[stage]
 
 
 def report(stage: str, done: int, total: int, unit: str = "tokens") -> None:
@@ -26,5 +46,15 @@ def listen(sink):
     token = _SINKS.set(_SINKS.get() + (sink,))
     try:
         yield sink
+    finally:
+        _SINKS.reset(token)
+
+
+@contextmanager
+def quiet():
+    """No sink hears the reports of the ``with`` block (a calibration's short runs, for example)."""
+    token = _SINKS.set(())
+    try:
+        yield
     finally:
         _SINKS.reset(token)

@@ -103,12 +103,13 @@ def test_the_stage_list_is_the_one_order():
 
     from graphkit.flows import refresh
 
-    assert [s.name for s in pipeline.STAGES] == ["ingest", "graph", "holdout", "eval_walks", "eval_train", "walks",
-                                                 "train", "evaluate", "publish"]
+    assert [s.name for s in pipeline.STAGES] == ["ingest", "graph", "holdout", "budget", "eval_walks", "eval_train",
+                                                 "walks", "train", "evaluate", "publish"]
     source = inspect.getsource(refresh.refresh_flow)
     assert "pipeline.execute(" in source and "stage_ingest" not in source and "stage_walks" not in source
     markers = {s.name: s.marker for s in pipeline.STAGES if s.marker}
-    assert markers == {"ingest": "ingest.json", "holdout": "holdout.json", "eval_walks": "manifest.json",
+    assert markers == {"ingest": "ingest.json", "holdout": "holdout.json", "budget": "sizing.json",
+                       "eval_walks": "manifest.json",
                        "eval_train": "train.json", "walks": "manifest.json", "train": "train.json"}
 
 

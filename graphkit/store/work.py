@@ -10,7 +10,7 @@ __all__ = ["clean_work", "WORK_PREFIXES"]
 
 
 #: The stage folders :func:`graphkit.pipeline.plan_run` names under ``STORE/work/``.
-WORK_PREFIXES = ("ingest-", "holdout-", "walks-", "train-")
+WORK_PREFIXES = ("ingest-", "holdout-", "budget-", "walks-", "train-")
 
 
 def clean_work(store, *, keep=(), older_than_days: float = 7.0, now: float | None = None) -> list[str]:
