@@ -39,11 +39,12 @@ def total(n_nodes, length, passes, c, p, e):
 @pytest.mark.parametrize("passes", [1, 2])
 def test_the_sizing_is_the_most_tokens_that_fit_and_prefers_walks_at_equal_tokens(minutes, passes):
     n, length, elapsed, c = 100_000, 40, 12.0, costs()
-    s = budget.choose_sizing(minutes=minutes, elapsed=elapsed, n_nodes=n, length=length, passes=passes, costs=c,
-                             max_per_node=30, max_epochs=4) if total(n, length, passes, c, 2, 1) <= (
-        minutes * 60 * budget.SAFETY - elapsed) else None
+    floor = budget.floor_sizing(length, 30, 4)
+    assert floor == (4, 1)   # 160 visits per node: 4 walks of 40 nodes
     left = minutes * 60 * budget.SAFETY - elapsed
-    fitting = [(p, e) for p in range(2, 31) for e in range(1, 5) if total(n, length, passes, c, p, e) <= left]
+    s = budget.choose_sizing(minutes=minutes, elapsed=elapsed, n_nodes=n, length=length, passes=passes, costs=c,
+                             max_per_node=30, max_epochs=4) if total(n, length, passes, c, *floor) <= left else None
+    fitting = [(p, e) for p in range(4, 31) for e in range(1, 5) if total(n, length, passes, c, p, e) <= left]
     if not fitting:
         assert s is None
         return
@@ -68,19 +69,27 @@ def test_a_budget_below_the_floor_names_the_smallest_budget_that_fits():
                              max_epochs=1)
     text = str(err.value)
     assert "\n" not in text and text.startswith("[budget] minutes = 2 is below the smallest sizing")
-    assert "walks.per_node = 2" in text and "train.epochs = 1" in text
+    assert "walks.per_node = 4" in text and "train.epochs = 1" in text
     need = float(text.rsplit("at least ", 1)[1])
     # the budget named fits, and a tenth of a minute less would not (it is rounded up to a tenth)
     s = budget.choose_sizing(minutes=need, elapsed=30, n_nodes=n, length=length, passes=1, costs=c,
                              max_per_node=10, max_epochs=1)
-    assert s.per_node >= 2
-    assert (30 + total(n, length, 1, c, 2, 1)) / budget.SAFETY / 60 > need - 0.1
+    assert s.per_node >= 4
+    assert (30 + total(n, length, 1, c, 4, 1)) / budget.SAFETY / 60 > need - 0.1
+
+
+@pytest.mark.parametrize("length, bounds, floor", [(40, (10, 1), (4, 1)), (20, (10, 3), (8, 1)), (80, (10, 1), (2, 1)),
+                                                   (10, (4, 9), (4, 4)), (10, (2, 3), (2, 3)), (200, (5, 5), (1, 1))])
+def test_the_smallest_sizing_gives_160_visits_per_node_within_the_bounds(length, bounds, floor):
+    assert budget.floor_sizing(length, *bounds) == floor
+    p, e = floor
+    assert p * e * length >= budget.FLOOR_VISITS or (p, e) == bounds
 
 
 def test_the_floor_follows_a_lower_bound():
     s = budget.choose_sizing(minutes=0.5, elapsed=0, n_nodes=100, length=10, passes=1, costs=costs(tail=1.0),
                              max_per_node=1, max_epochs=5)
-    assert s.per_node == 1 and s.epochs == 5
+    assert s.per_node == 1 and s.epochs == 5   # walks of 10 nodes, one per node: 16 epochs would be the floor
 
 
 def test_seconds_after_each_stage_add_up_to_the_prediction():
@@ -165,10 +174,10 @@ def test_a_tight_budget_trains_less_than_the_bounds(tmp_path, budgeted_store):
     rows = list_versions(store)
     b = rows[-1]["params"]["lineage"]["budget"]
     c = budget.UnitCosts(**{k: v for k, v in b["costs"].items()})
-    # a budget that affords about three walks per node at one epoch, from the same unit costs the run will use
+    # a budget that affords about nine walks per node at one epoch, from the same unit costs the run will use
     elapsed = 0.5 * b["elapsed_at_sizing"]
-    seconds = elapsed + total(b["nodes"], 20, 1, c, 3, 1) + 0.25 * (total(b["nodes"], 20, 1, c, 4, 1)
-                                                                   - total(b["nodes"], 20, 1, c, 3, 1))
+    seconds = elapsed + total(b["nodes"], 20, 1, c, 9, 1) + 0.25 * (total(b["nodes"], 20, 1, c, 10, 1)
+                                                                   - total(b["nodes"], 20, 1, c, 9, 1))
     minutes = seconds / budget.SAFETY / 60
     s = budget.choose_sizing(minutes=minutes, elapsed=elapsed, n_nodes=b["nodes"], length=20, passes=1, costs=c,
                              max_per_node=40, max_epochs=4)
@@ -177,7 +186,7 @@ def test_a_tight_budget_trains_less_than_the_bounds(tmp_path, budgeted_store):
 
 
 def test_the_later_stages_run_with_the_sizing_chosen(tmp_path, monkeypatch):
-    """With unit costs that afford three walks per node at one epoch, the corpus and the training are that size."""
+    """With unit costs that afford nine walks per node at one epoch, the corpus and the training are that size."""
     c = costs(walk=1e-5, train=1e-2, tail=1.0)
     monkeypatch.setattr(budget, "calibrate", lambda *a, **k: (c, 0.0))
     store = tmp_path / "store"
@@ -185,18 +194,18 @@ def test_the_later_stages_run_with_the_sizing_chosen(tmp_path, monkeypatch):
     n = 2999  # the demo's nodes
     from graphkit.pipeline import RUN_CLOCK
 
-    # minutes such that 3 walks per node fit and 4 do not, whatever the run spent before the sizing (< 60 s here)
-    t3, t4 = total(n, 20, 1, c, 3, 1), total(n, 20, 1, c, 4, 1)
-    assert t4 - t3 > 60
-    minutes = (t3 + 60) / budget.SAFETY / 60
+    # minutes such that 9 walks per node fit and 10 do not, whatever the run spent before the sizing (< 60 s here)
+    t9, t10 = total(n, 20, 1, c, 9, 1), total(n, 20, 1, c, 10, 1)
+    assert t10 - t9 > 60
+    minutes = (t9 + 60) / budget.SAFETY / 60
     cfg = _cfg(store, "walks.per_node=40", "train.epochs=4", f"budget.minutes={minutes}")
     RUN_CLOCK.reset()
     assert refresh(cfg) == 1
     row = list_versions(store)[-1]
     b = row["params"]["lineage"]["budget"]
-    assert (b["per_node"], b["epochs"]) == (3, 1) and b["nodes"] == n
-    assert row["params"]["walks"]["per_node"] == 3 and row["params"]["train"]["epochs"] == 1
-    assert row["counts"]["walks"] == 3 * n and row["counts"]["train_tokens"] == row["counts"]["walk_tokens"]
+    assert (b["per_node"], b["epochs"]) == (9, 1) and b["nodes"] == n
+    assert row["params"]["walks"]["per_node"] == 9 and row["params"]["train"]["epochs"] == 1
+    assert row["counts"]["walks"] == 9 * n and row["counts"]["train_tokens"] == row["counts"]["walk_tokens"]
 
 
 def test_a_rerun_after_a_failure_keeps_the_sizing_of_its_first_attempt(tmp_path, monkeypatch):
