@@ -10,6 +10,7 @@ Printed side by side: budget, wall, wall / budget, the sizing chosen, the predic
 walks and training.
 
     .venv/bin/python tests/bench/bench_budget.py --sizes 100k,1m --minutes 2,5,15 [--lineage] [--json out.json]
+    .venv/bin/python tests/bench/bench_budget.py --sizes 100k --minutes 5 --only-lineage   # on the store left behind
 
 Item 3 of the issue (the budgeted run against the reference pipeline at equal wall time) is not measured here yet.
 """
@@ -52,6 +53,8 @@ def main(argv=None) -> int:
     ap.add_argument("--sizes", default="100k", help="comma-separated node counts (100k, 1m, ...)")
     ap.add_argument("--minutes", default="2,5,15", help="comma-separated budgets in minutes")
     ap.add_argument("--lineage", action="store_true", help="run every budget a second time, sized from lineage")
+    ap.add_argument("--only-lineage", action="store_true",
+                    help="keep the store of an earlier run of this benchmark and size every run from its lineage")
     ap.add_argument("--out", default="/tmp/graphkit-bench-budget", help="work folder")
     ap.add_argument("--json", help="also write the figures to this file")
     args = ap.parse_args(argv)
@@ -64,7 +67,8 @@ def main(argv=None) -> int:
         edges = make_graph(folder, n, 20)
         store = folder / "store"
         config = write_config(folder, edges, store, None)
-        for sweep in (("calibration", "lineage") if args.lineage else ("calibration",)):
+        sweeps = ("calibration", "lineage") if args.lineage else ("calibration",)
+        for sweep in (("lineage",) if args.only_lineage else sweeps):
             for minutes in map(float, args.minutes.split(",")):
                 if sweep == "calibration" and store.exists():
                     import shutil
