@@ -257,7 +257,11 @@ class ConsoleProgress:
             return
         bar["done"] = done
         rate = _rate(done - bar["done0"], now - bar["t0"])
-        self.progress.update(bar["id"], completed=done, figures=f"{si(done)}/{si(total)} {unit}, {si(rate)} {unit}/s")
+        figures = f"{si(done)}/{si(total)} {unit}, {si(rate)} {unit}/s"
+        finish = progress.finish_time(stage, (total - done) / rate) if rate > 0 and done < total else None
+        if finish is not None:  # a budgeted run: when the whole run is predicted to end, at this rate
+            figures += f", run ends ~{datetime.fromtimestamp(finish).strftime('%H:%M:%S')}"
+        self.progress.update(bar["id"], completed=done, figures=figures)
 
 
 def listen(sink):

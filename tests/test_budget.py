@@ -269,3 +269,35 @@ def test_bad_budget_values_are_refused_naming_the_key(tmp_path, value):
 def test_the_default_has_no_budget_and_no_sizing_stage(tmp_path):
     cfg = load_config(DEMO, [f'store.path="{tmp_path / "store"}"'])
     assert cfg.budget.minutes is None and "budget_dir" not in plan_run(cfg)
+
+
+def test_progress_lines_add_the_run_finish_predicted_at_the_current_rate(monkeypatch):
+    import time as _time
+    from datetime import datetime
+
+    from graphkit.flows.artifacts import LogProgress
+
+    lines = []
+
+    class Logger:
+        def info(self, msg, *args):
+            lines.append(msg % args)
+
+    monkeypatch.setattr(_time, "time", lambda: 1_000_000.0)
+    progress.predict_finish(budget.seconds_after({"walks": 10.0, "train": 100.0, "after_train": 30.0}))
+    try:
+        now = [0.0]
+        sink = LogProgress(Logger(), every=1, clock=lambda: now[0])
+        sink("train", 0, 100, "tokens")
+        now[0] = 10.0
+        sink("train", 50, 100, "tokens")   # 5 tokens/s: 10 s left, then the 30 s after training
+        sink("walks", 0, 10, "tokens")     # walks are followed by training (100 s) and the rest (30 s)
+        now[0] = 11.0
+        sink("walks", 5, 10, "tokens")
+    finally:
+        progress.predict_finish(None)
+    at = datetime.fromtimestamp(1_000_000.0 + 10 + 30).strftime("%H:%M:%S")
+    assert lines[0] == f"train: 50% (50 of 100 tokens), 5 tokens/s, 10.0 s left, run finish predicted at {at}"
+    at_walks = datetime.fromtimestamp(1_000_000.0 + 1 + 130).strftime("%H:%M:%S")
+    assert lines[1] == f"walks: 50% (5 of 10 tokens), 5 tokens/s, 1.0 s left, run finish predicted at {at_walks}"
+    assert progress.finish_time("train", 1.0) is None
