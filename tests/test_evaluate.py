@@ -309,6 +309,20 @@ def test_node_classification_perfect_vectors():
     assert out["n_labelled"] == 500 and out["n_classes"] == 5 and out["repeats"] == 2
 
 
+@pytest.mark.parametrize("n_classes", [127, 128, 129, 205, 300])
+def test_node_classification_with_more_than_a_byte_of_labels(n_classes):
+    """Many labels (a node's top-level package, its region, its merchant category): near-perfect vectors still
+    score F1 = 1. scikit-learn 1.9's OneVsRestClassifier fits an int8 label matrix of more than 127 labels with its
+    estimators shifted against the columns, which scored such vectors at chance."""
+    rng = np.random.default_rng(5)
+    n = 6 * n_classes + 400
+    labels = np.r_[np.arange(n_classes), rng.integers(0, n_classes, n - n_classes)]  # every label present
+    vectors = (np.eye(n_classes)[labels] + 0.01 * rng.normal(size=(n, n_classes))).astype(np.float32)
+    out = node_classification(vectors, np.arange(n), labels.astype(str), ratios=(0.5,), repeats=1, seed=1)
+    assert out["n_classes"] == n_classes
+    assert out["per_ratio"][0]["micro_f1_mean"] > 0.9   # at chance: about 1 / n_classes
+
+
 def test_node_classification_top_k_uses_true_label_count():
     rng = np.random.default_rng(3)
     n = 600

@@ -178,7 +178,9 @@ def _label_matrix(node_idx, label, n_rows):
     except TypeError as exc:  # mixed or missing (None) values in an object array
         raise ConfigError(f"label values must be all numbers or all strings, without nulls ({exc})") from None
     rows, row_of = np.unique(node_idx[has_vector], return_inverse=True)
-    y = np.zeros((rows.size, classes.size), dtype=np.int8)
+    # int32, not int8: scikit-learn 1.9's OneVsRestClassifier pairs the estimators with the wrong columns of an int8
+    # label matrix of more than 127 labels (every prediction shifted by 128 columns; tests/test_evaluate.py)
+    y = np.zeros((rows.size, classes.size), dtype=np.int32)
     y[row_of, code] = 1  # a repeated (node, label) pair counts once
     return rows, y, classes, n_unmatched
 
@@ -186,9 +188,9 @@ def _label_matrix(node_idx, label, n_rows):
 def _top_k(scores, k):
     """0/1 matrix marking the ``k[i]`` highest scores of row ``i``."""
     order = np.argsort(-scores, axis=1, kind="stable")
-    out = np.zeros(scores.shape, dtype=np.int8)
+    out = np.zeros(scores.shape, dtype=np.int32)
     take = np.arange(scores.shape[1])[None, :] < k[:, None]
-    np.put_along_axis(out, order, take.astype(np.int8), axis=1)
+    np.put_along_axis(out, order, take.astype(np.int32), axis=1)
     return out
 
 
