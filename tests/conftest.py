@@ -1,8 +1,12 @@
-"""Shared fixtures: tiny graphs for exact checks and a planted-partition graph for quality checks."""
+"""Shared fixtures: tiny graphs for exact checks, a planted-partition graph for quality checks, the one Prefect
+server of a test process, the demo store built once, and the command line called in this process."""
 
 from __future__ import annotations
 
 import os
+import shutil
+import time
+from pathlib import Path
 
 import networkx as nx
 import numpy as np
@@ -19,6 +23,9 @@ os.environ.setdefault("DO_NOT_TRACK", "1")
 os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
 
 from graphkit.graph import AdjacencyArrays  # noqa: E402
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = ROOT / "sample_parquet" / "demo.toml"
 
 
 #: Overrides that make the demo refresh a quick fixture: fewer, shorter walks, small vectors, no evaluation.
@@ -82,3 +89,108 @@ def planted_partition(n_blocks=50, block_size=200, in_deg=6.0, out_deg=6.0, seed
 def planted_graph():
     """50 blocks x 200 nodes, 6 expected edges inside and 6 outside the block per node."""
     return planted_partition()
+
+
+# ---------------------------------------------------------------------------------------------------- Prefect
+@pytest.fixture(scope="session")
+def prefect_api():
+    """One Prefect server (a temporary database of its own) for every test of this process that runs a flow;
+    yields its API URL.
+
+    It is started the first time a test asks for it (about 10 s) and then stays up, and ``PREFECT_API_URL`` stays
+    set, for the rest of the session: in this process (flows run in-process use it) and in the environment of
+    every subprocess started afterwards (``graphkit refresh`` then starts no temporary server of its own). A test
+    of the temporary server itself removes ``PREFECT_API_URL`` from the environment it gives its subprocess.
+    """
+    from prefect.settings import PREFECT_API_URL
+    from prefect.testing.utilities import prefect_test_harness
+
+    saved = os.environ.get("PREFECT_API_URL")
+    with prefect_test_harness(server_startup_timeout=120):
+        url = PREFECT_API_URL.value()
+        os.environ["PREFECT_API_URL"] = url
+        try:
+            yield url
+        finally:
+            if saved is None:
+                os.environ.pop("PREFECT_API_URL", None)
+            else:
+                os.environ["PREFECT_API_URL"] = saved
+
+
+# ---------------------------------------------------------------------------------------------------- the demo
+@pytest.fixture(scope="session")
+def demo_template(tmp_path_factory):
+    """The demo (``FAST_DEMO``) refreshed once per test process, without Prefect: a store holding version 1.
+    Never written to: take a copy with :func:`copy_store`."""
+    import graphkit
+    from graphkit.config import load_config
+
+    store = tmp_path_factory.mktemp("demo-template") / "store"
+    assert graphkit.refresh(load_config(DEMO, [f'store.path="{store}"', *FAST_DEMO])) == 1
+    return store
+
+
+def copy_store(store: Path, dest: Path) -> Path:
+    """A private copy of a built store (a store holds no absolute path: a copy is a store of its own)."""
+    return Path(shutil.copytree(store, dest))
+
+
+# ---------------------------------------------------------------------------------------------------- the CLI
+def cli(*argv) -> tuple[int, str, str, float]:
+    """``graphkit ARGV`` in this process (``graphkit.cli.main``): exit code, stdout, stderr and seconds.
+
+    The one-line stderr and exit code of a real process are checked in one subprocess test
+    (tests/test_cli.py); every other test calls the command line here, without an interpreter's start-up and
+    imports per call. Usable in module fixtures too (no ``capsys``).
+    """
+    import contextlib
+    import io
+
+    import graphkit.cli
+
+    out, err = io.StringIO(), io.StringIO()
+    t0 = time.monotonic()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        code = graphkit.cli.main([str(a) for a in argv])
+    return code, out.getvalue(), err.getvalue(), time.monotonic() - t0
+
+
+# ---------------------------------------------------------------------------------------------------- processes
+def watch_descendants(proc, timeout: float = 600, each=None, message: str = "the process did not end") -> dict:
+    """Poll a running ``subprocess.Popen`` until it ends; pid -> (``psutil.Process``, command line) of every
+    descendant seen meanwhile (again each time: a child just forked still shows our command line, a zombie
+    none). ``each()``, if given, is called at every poll (20 times a second)."""
+    import psutil
+
+    parent = psutil.Process(proc.pid)
+    seen: dict = {}
+    deadline = time.monotonic() + timeout
+    while proc.poll() is None:
+        assert time.monotonic() < deadline, message
+        try:
+            for child in parent.children(recursive=True):
+                try:
+                    cmd = " ".join(child.cmdline())
+                except psutil.Error:
+                    continue
+                if cmd:
+                    seen[child.pid] = (child, cmd)
+        except psutil.NoSuchProcess:
+            pass
+        if each is not None:
+            each()
+        time.sleep(0.05)
+    return seen
+
+
+def assert_gone(processes, within: float) -> None:
+    """Every ``psutil.Process`` given has ended (or is a zombie) within ``within`` seconds."""
+    import psutil
+
+    deadline = time.monotonic() + within
+    alive = list(processes)
+    while alive and time.monotonic() < deadline:
+        alive = [p for p in alive if p.is_running() and p.status() != psutil.STATUS_ZOMBIE]
+        time.sleep(0.1)
+    assert alive == [], f"left running: {alive}"
