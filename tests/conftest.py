@@ -18,6 +18,13 @@ if os.environ.get("PYTEST_XDIST_WORKER"):
     # servers writing one database file would wait on each other's locks.
     os.environ["PREFECT_HOME"] = os.path.join(os.environ["PREFECT_HOME"], os.environ["PYTEST_XDIST_WORKER"])
 os.makedirs(os.environ["PREFECT_HOME"], exist_ok=True)  # before Prefect's import, which warns when it cannot
+if not os.environ.get("PYTEST_XDIST_WORKER"):
+    # The session's process (the controller under pytest-xdist, whose workers inherit these): the one Prefect
+    # server of the session (``prefect_api``) lives as long as it, its URL in a folder of the session's own.
+    import tempfile
+
+    os.environ["GRAPHKIT_TEST_SESSION_PID"] = str(os.getpid())
+    os.environ["GRAPHKIT_TEST_SHARED_DIR"] = os.path.join(tempfile.gettempdir(), f"graphkit-tests-{os.getpid()}")
 os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
 os.environ.setdefault("DO_NOT_TRACK", "1")
 os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
@@ -26,6 +33,18 @@ from graphkit.graph import AdjacencyArrays  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "sample_parquet" / "demo.toml"
+
+
+#: The files whose tests take longest, longest first (seconds on the 2-core box, a full run under load): they are
+#: collected first, so that pytest-xdist's ``--dist loadfile`` hands them out first and the two workers finish
+#: together instead of one waiting on a long file it was given last. The other files keep their order after them.
+LONG_FILES = ("test_flows.py", "test_signals.py", "test_writers.py", "test_logs.py", "test_faults.py",
+              "test_versions.py", "test_train.py", "test_quality.py", "test_neighbours.py")
+
+
+def pytest_collection_modifyitems(config, items):
+    rank = {name: i for i, name in enumerate(LONG_FILES)}
+    items.sort(key=lambda item: rank.get(item.path.name, len(LONG_FILES)))  # stable: order within a file kept
 
 
 #: Overrides that make the demo refresh a quick fixture: fewer, shorter walks, small vectors, no evaluation.
@@ -94,28 +113,47 @@ def planted_graph():
 # ---------------------------------------------------------------------------------------------------- Prefect
 @pytest.fixture(scope="session")
 def prefect_api():
-    """One Prefect server (a temporary database of its own) for every test of this process that runs a flow;
-    yields its API URL.
+    """The one Prefect server of the test session (a temporary database of its own), for every test that runs a
+    flow; yields its API URL.
 
-    It is started the first time a test asks for it (about 10 s) and then stays up, and ``PREFECT_API_URL`` stays
-    set, for the rest of the session: in this process (flows run in-process use it) and in the environment of
-    every subprocess started afterwards (``graphkit refresh`` then starts no temporary server of its own). A test
-    of the temporary server itself removes ``PREFECT_API_URL`` from the environment it gives its subprocess.
+    Started by the first test that asks for it (about 10 s), as a process of its own (tests/prefect_server.py),
+    which every pytest-xdist worker then uses, and stopped when the session ends. From then on
+    ``PREFECT_API_URL`` stays set in this process (flows run in-process use the server) and in the environment of
+    every subprocess started (``graphkit refresh`` then starts no temporary server of its own). A test of the
+    temporary server itself removes ``PREFECT_API_URL`` from the environment it gives its subprocess.
     """
-    from prefect.settings import PREFECT_API_URL
-    from prefect.testing.utilities import prefect_test_harness
+    import fcntl
+    import subprocess
+    import sys
 
+    from prefect.settings import PREFECT_API_URL, temporary_settings
+
+    shared = Path(os.environ["GRAPHKIT_TEST_SHARED_DIR"])
+    shared.mkdir(exist_ok=True)
+    url_file = shared / "prefect-api-url"
+    with open(shared / "prefect-api.lock", "w") as lock:
+        fcntl.flock(lock, fcntl.LOCK_EX)  # one worker starts it; the other waits here, then reads the URL
+        if not url_file.exists():
+            with open(shared / "prefect-server.log", "ab") as log:
+                server = subprocess.Popen([sys.executable, str(Path(__file__).with_name("prefect_server.py")),
+                                           str(url_file), os.environ["GRAPHKIT_TEST_SESSION_PID"]],
+                                          stdin=subprocess.DEVNULL, stdout=log, stderr=log, start_new_session=True)
+            deadline = time.monotonic() + 180
+            while not url_file.exists():
+                assert server.poll() is None, (shared / "prefect-server.log").read_text()[-3000:]
+                assert time.monotonic() < deadline, "the test session's Prefect server did not start"
+                time.sleep(0.1)
+    url = url_file.read_text()
     saved = os.environ.get("PREFECT_API_URL")
-    with prefect_test_harness(server_startup_timeout=120):
-        url = PREFECT_API_URL.value()
-        os.environ["PREFECT_API_URL"] = url
-        try:
+    os.environ["PREFECT_API_URL"] = url
+    try:
+        with temporary_settings(updates={PREFECT_API_URL: url}):
             yield url
-        finally:
-            if saved is None:
-                os.environ.pop("PREFECT_API_URL", None)
-            else:
-                os.environ["PREFECT_API_URL"] = saved
+    finally:
+        if saved is None:
+            os.environ.pop("PREFECT_API_URL", None)
+        else:
+            os.environ["PREFECT_API_URL"] = saved
 
 
 # ---------------------------------------------------------------------------------------------------- the demo

@@ -180,6 +180,7 @@ def test_bad_tables_exit_2_and_change_nothing(published, no_prefect, kind):
     assert snapshot(published / "store") == before
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("stage", ["ingest", "walks", "train", "publish"])
 def test_killed_run_leaves_store_whole_and_next_run_publishes(published_copy, stage):
     published = published_copy
@@ -201,6 +202,7 @@ def test_killed_run_leaves_store_whole_and_next_run_publishes(published_copy, st
     assert list((published / "store" / "work").iterdir()) == []
 
 
+@pytest.mark.slow
 def test_killed_nightly_run_resumes_and_leaves_nothing_in_work(tmp_path):
     """A relative window (decay measured from the run's as_of, no until): the rerun after a kill takes the killed
     run's as_of from STORE/work, resumes its finished stages, and the finished run leaves STORE/work empty."""
@@ -222,6 +224,7 @@ def test_killed_nightly_run_resumes_and_leaves_nothing_in_work(tmp_path):
     assert list(work.iterdir()) == []
 
 
+@pytest.mark.slow
 def test_second_writer_refused_and_stale_lock_ignored(published_copy):
     published = published_copy
     store = published / "store"

@@ -515,6 +515,7 @@ def test_served_deployment_runs_a_refresh(harness, tmp_path):
     assert datetime.fromisoformat(row["params"]["lineage"]["window"]["as_of"]) == run.expected_start_time
 
 
+@pytest.mark.slow
 def test_a_run_leaves_at_most_its_flow_result_in_prefect_storage(harness, tmp_path):
     """Stages persist no Prefect result (the completion markers are the resume record); the only file a run
     adds to Prefect's local result storage is the flow's return value (a few bytes)."""

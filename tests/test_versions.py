@@ -208,6 +208,7 @@ def test_alignment_allocates_no_float64_copy(tmp_path):
     assert peak < matrix + gs.ALIGN_BLOCK_BYTES + indices, (peak, matrix)
 
 
+@pytest.mark.slow
 def test_refresh_records_alignment_residual(tmp_path, demo_template, monkeypatch):
     from graphkit import store as gs
 
@@ -236,6 +237,7 @@ def test_neighbour_mean_fold_in():
     assert has.tolist() == [True, False]
 
 
+@pytest.mark.slow
 def test_foldin_command_publishes_provisional_rows(tmp_path):
     data = tmp_path / "data"
     data.mkdir()
@@ -369,6 +371,7 @@ def _reader(store, stop, queue):
     queue.put((sorted(seen), bad, reads))
 
 
+@pytest.mark.slow
 def test_concurrent_reader_sees_whole_versions(tmp_path):
     publish(tmp_path, [f"n{i}" for i in range(100)], np.ones((100, 4)))
     ctx = mp.get_context("spawn")
@@ -387,6 +390,7 @@ def test_concurrent_reader_sees_whole_versions(tmp_path):
     assert len(seen) >= 2  # it did read across publishes
 
 
+@pytest.mark.slow
 def test_warm_start_counts_and_moves_less(tmp_path, demo_template):
     """Warm start: nodes of the current version start from it, so a second run moves less than a cold one,
     measured as the overlap of each node's 10 nearest neighbours with the current version (rotation and scale
@@ -438,6 +442,7 @@ def test_clean_work_removes_only_old_stage_folders(tmp_path):
     assert sorted(clean_work(tmp_path, older_than_days=0, now=now)) == sorted([str(fresh), str(kept)])
 
 
+@pytest.mark.slow
 def test_a_finished_refresh_removes_abandoned_stage_folders(tmp_path):
     """An earlier run killed after its walks, whose parameters then changed, leaves folders nothing resumes from."""
     now = time.time()

@@ -172,6 +172,7 @@ with store_lock(sys.argv[1], purpose="refresh"):
 """
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("command", [["promote", "1"], ["pin", "1"], ["pin", "1", "--unpin"]])
 def test_standalone_writer_refused_with_the_holder_or_waits(tmp_path, capsys, command):
     _publish(tmp_path)
@@ -445,6 +446,7 @@ def test_fault_point_needs_the_test_switch(tmp_path):
     assert r.returncode == -9
 
 
+@pytest.mark.slow
 def test_writers_in_threads_of_one_process_take_turns(tmp_path):
     """The flock cannot tell threads apart: publishes and promotes from several threads of one process must not
     lose each other's catalog changes."""
