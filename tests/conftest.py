@@ -1,8 +1,9 @@
 """Shared fixtures: tiny graphs for exact checks, a planted-partition graph for quality checks, the one Prefect
-server of a test process, the demo store built once, and the command line called in this process."""
+server of the test session, the demo store built once, and the command line called in this process."""
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import time
@@ -19,8 +20,9 @@ if os.environ.get("PYTEST_XDIST_WORKER"):
     os.environ["PREFECT_HOME"] = os.path.join(os.environ["PREFECT_HOME"], os.environ["PYTEST_XDIST_WORKER"])
 os.makedirs(os.environ["PREFECT_HOME"], exist_ok=True)  # before Prefect's import, which warns when it cannot
 if not os.environ.get("PYTEST_XDIST_WORKER"):
-    # The session's process (the controller under pytest-xdist, whose workers inherit these): the one Prefect
-    # server of the session (``prefect_api``) lives as long as it, its URL in a folder of the session's own.
+    # The session's process (the controller under pytest-xdist, whose workers inherit these): what the workers
+    # share (the Prefect server of ``prefect_api``, the store of ``demo_template``) lives as long as it, in a
+    # folder of the session's own.
     import tempfile
 
     os.environ["GRAPHKIT_TEST_SESSION_PID"] = str(os.getpid())
@@ -40,6 +42,24 @@ DEMO = ROOT / "sample_parquet" / "demo.toml"
 #: together instead of one waiting on a long file it was given last. The other files keep their order after them.
 LONG_FILES = ("test_flows.py", "test_signals.py", "test_writers.py", "test_logs.py", "test_faults.py",
               "test_versions.py", "test_train.py", "test_quality.py", "test_neighbours.py")
+
+
+def pytest_unconfigure(config):
+    if not os.environ.get("PYTEST_XDIST_WORKER"):  # the session's process: the workers have ended
+        shutil.rmtree(os.environ["GRAPHKIT_TEST_SHARED_DIR"], ignore_errors=True)
+
+
+@contextlib.contextmanager
+def session_once(name: str):
+    """Held by one process of the session at a time (a file lock in the session's shared folder), so that what
+    the first one builds there the others find built; yields the folder."""
+    import fcntl
+
+    shared = Path(os.environ["GRAPHKIT_TEST_SHARED_DIR"])
+    shared.mkdir(exist_ok=True)
+    with open(shared / f"{name}.lock", "w") as lock:
+        fcntl.flock(lock, fcntl.LOCK_EX)
+        yield shared
 
 
 def pytest_collection_modifyitems(config, items):
@@ -122,17 +142,13 @@ def prefect_api():
     every subprocess started (``graphkit refresh`` then starts no temporary server of its own). A test of the
     temporary server itself removes ``PREFECT_API_URL`` from the environment it gives its subprocess.
     """
-    import fcntl
     import subprocess
     import sys
 
     from prefect.settings import PREFECT_API_URL, temporary_settings
 
-    shared = Path(os.environ["GRAPHKIT_TEST_SHARED_DIR"])
-    shared.mkdir(exist_ok=True)
-    url_file = shared / "prefect-api-url"
-    with open(shared / "prefect-api.lock", "w") as lock:
-        fcntl.flock(lock, fcntl.LOCK_EX)  # one worker starts it; the other waits here, then reads the URL
+    with session_once("prefect-api") as shared:  # one worker starts it; the other waits here, then reads the URL
+        url_file = shared / "prefect-api-url"
         if not url_file.exists():
             with open(shared / "prefect-server.log", "ab") as log:
                 server = subprocess.Popen([sys.executable, str(Path(__file__).with_name("prefect_server.py")),
@@ -158,14 +174,18 @@ def prefect_api():
 
 # ---------------------------------------------------------------------------------------------------- the demo
 @pytest.fixture(scope="session")
-def demo_template(tmp_path_factory):
-    """The demo (``FAST_DEMO``) refreshed once per test process, without Prefect: a store holding version 1.
-    Never written to: take a copy with :func:`copy_store`."""
+def demo_template():
+    """The demo (``FAST_DEMO``) refreshed once per test session, without Prefect (by the first worker that needs
+    it; the other finds it built): a store holding version 1. Never written to: take a copy with
+    :func:`copy_store`."""
     import graphkit
     from graphkit.config import load_config
 
-    store = tmp_path_factory.mktemp("demo-template") / "store"
-    assert graphkit.refresh(load_config(DEMO, [f'store.path="{store}"', *FAST_DEMO])) == 1
+    with session_once("demo-template") as shared:
+        store = shared / "demo-template" / "store"
+        if not (store / "catalog.duckdb").exists():  # renamed in last, by the publish
+            shutil.rmtree(store.parent, ignore_errors=True)  # what a failed build left
+            assert graphkit.refresh(load_config(DEMO, [f'store.path="{store}"', *FAST_DEMO])) == 1
     return store
 
 

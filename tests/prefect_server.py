@@ -8,7 +8,6 @@ process SESSION_PID (the controller under pytest-xdist, whose workers all use th
 from __future__ import annotations
 
 import os
-import shutil
 import sys
 import time
 from pathlib import Path
@@ -32,7 +31,6 @@ def main(url_file: Path, session_pid: int) -> None:
             except psutil.NoSuchProcess:
                 break
             time.sleep(0.5)
-    shutil.rmtree(url_file.parent, ignore_errors=True)  # the session's folder: its URL, lock and this log
 
 
 if __name__ == "__main__":
