@@ -18,7 +18,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import graphkit
-from conftest import cli
+from conftest import cli, copy_store
 from graphkit.config import load_config
 from graphkit.errors import InputError, StoreError
 from graphkit.store import connect, list_versions, store_lock
@@ -81,12 +81,14 @@ def snapshot(folder):
 
 
 @pytest.fixture(scope="module")
-def published(tmp_path_factory):
-    """A folder with the demo transfers, a config, and a store holding version 1 (built without Prefect)."""
+def published(tmp_path_factory, demo_template):
+    """A folder with the demo transfers, a config, and a store holding version 1 of those transfers (a copy of
+    conftest's ``demo_template``: the same edges and dimension, built without Prefect)."""
     root = tmp_path_factory.mktemp("faults")
     shutil.copy(ROOT / "sample_parquet" / "transfers.parquet", root / "edges.parquet")
     (root / "ok.toml").write_text(CONFIG.format(**SMALL))
-    assert graphkit.refresh(load_config(root / "ok.toml")) == 1
+    copy_store(demo_template, root / "store")
+    assert [v["version"] for v in list_versions(root / "store")] == [1]
     return root
 
 

@@ -4,6 +4,7 @@ import os
 import subprocess
 import sys
 
+import pytest
 from prefect.settings import PREFECT_HOME, temporary_settings
 
 from graphkit.flows.tempserver import _LOG_KEEP_BYTES, _OwnSessionSubprocess, server_log_path
@@ -42,6 +43,7 @@ def test_output_already_redirected_is_left_alone(tmp_path):
         assert not server_log_path().exists() or "out line" not in server_log_path().read_text()
 
 
+@pytest.mark.slow  # imports Prefect's server, as the real start does
 def test_background_start_hands_back_the_watchdog_or_the_error(monkeypatch):
     import threading
 
