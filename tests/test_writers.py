@@ -240,7 +240,8 @@ RACER = """
 import os, sys, time
 from graphkit.errors import StoreError
 from graphkit.store import store_lock
-start = float(sys.argv[2])
+print("ready", flush=True)  # imported: the test then sends both the same start time
+start = float(sys.stdin.readline())
 time.sleep(max(0.0, start - time.time()))
 try:
     with store_lock(sys.argv[1]):
@@ -256,9 +257,13 @@ def test_two_writers_started_at_the_same_instant(tmp_path):
     """Started together, one wins; the other is refused naming the winner, which is alive at that moment."""
     (tmp_path / ".lock").write_text(f"{_dead_pid()} refresh")
     for _ in range(2):
-        start = time.time() + 3.0  # both have imported graphkit by then
-        procs = [subprocess.Popen([sys.executable, "-c", RACER, str(tmp_path), str(start)], cwd=ROOT, env=_env(),
-                                  stdout=subprocess.PIPE, text=True) for _ in range(2)]
+        procs = [subprocess.Popen([sys.executable, "-c", RACER, str(tmp_path)], cwd=ROOT, env=_env(),
+                                  stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True) for _ in range(2)]
+        assert [p.stdout.readline().strip() for p in procs] == ["ready", "ready"]  # both have imported graphkit
+        start = time.time() + 0.2
+        for p in procs:
+            p.stdin.write(f"{start!r}\n")
+            p.stdin.close()
         lines = {p.pid: p.stdout.readline().strip() for p in procs}
         for p in procs:
             p.wait(timeout=60)
