@@ -40,8 +40,8 @@ DEMO = ROOT / "sample_parquet" / "demo.toml"
 #: The files whose tests take longest, longest first (seconds on the 2-core box, a full run under load): they are
 #: collected first, so that pytest-xdist's ``--dist loadfile`` hands them out first and the two workers finish
 #: together instead of one waiting on a long file it was given last. The other files keep their order after them.
-LONG_FILES = ("test_flows.py", "test_signals.py", "test_writers.py", "test_logs.py", "test_faults.py",
-              "test_versions.py", "test_train.py", "test_quality.py", "test_neighbours.py")
+LONG_FILES = ("test_signals.py", "test_flows.py", "test_logs.py", "test_writers.py", "test_faults.py",
+              "test_train.py", "test_versions.py", "test_quality.py", "test_neighbours.py", "test_bad_input.py")
 
 
 def pytest_unconfigure(config):
@@ -62,9 +62,12 @@ def session_once(name: str):
         yield shared
 
 
+@pytest.hookimpl(trylast=True)  # after ``-m`` and ``-k`` have deselected
 def pytest_collection_modifyitems(config, items):
     rank = {name: i for i, name in enumerate(LONG_FILES)}
     items.sort(key=lambda item: rank.get(item.path.name, len(LONG_FILES)))  # stable: order within a file kept
+    if not config.option.collectonly and any("prefect_api" in getattr(i, "fixturenames", ()) for i in items):
+        start_prefect_server()  # boots while the first tests run
 
 
 #: Overrides that make the demo refresh a quick fixture: fewer, shorter walks, small vectors, no evaluation.
@@ -131,34 +134,46 @@ def planted_graph():
 
 
 # ---------------------------------------------------------------------------------------------------- Prefect
+def start_prefect_server() -> Path:
+    """Start the session's Prefect server (tests/prefect_server.py) unless a process of the session already has;
+    return the file its API URL appears in once it is up. Does not wait."""
+    import subprocess
+    import sys
+
+    with session_once("prefect-api") as shared:
+        url_file, pid_file = shared / "prefect-api-url", shared / "prefect-server.pid"
+        if not pid_file.exists():
+            with open(shared / "prefect-server.log", "ab") as log:
+                server = subprocess.Popen([sys.executable, str(Path(__file__).with_name("prefect_server.py")),
+                                           str(url_file), os.environ["GRAPHKIT_TEST_SESSION_PID"]],
+                                          stdin=subprocess.DEVNULL, stdout=log, stderr=log, start_new_session=True)
+            pid_file.write_text(str(server.pid))
+    return url_file
+
+
 @pytest.fixture(scope="session")
 def prefect_api():
     """The one Prefect server of the test session (a temporary database of its own), for every test that runs a
     flow; yields its API URL.
 
-    Started by the first test that asks for it (about 10 s), as a process of its own (tests/prefect_server.py),
-    which every pytest-xdist worker then uses, and stopped when the session ends. From then on
-    ``PREFECT_API_URL`` stays set in this process (flows run in-process use the server) and in the environment of
-    every subprocess started (``graphkit refresh`` then starts no temporary server of its own). A test of the
-    temporary server itself removes ``PREFECT_API_URL`` from the environment it gives its subprocess.
+    A process of its own (tests/prefect_server.py), which every pytest-xdist worker uses, stopped when the
+    session ends. It boots (about 10 s) in the background from the end of the collection when a selected test asks
+    for it (``pytest_collection_modifyitems``), else when the first test asks. From then on ``PREFECT_API_URL``
+    stays set in this process (flows run in-process use the server) and in the environment of every subprocess
+    started (``graphkit refresh`` then starts no temporary server of its own). A test of the temporary server
+    itself removes ``PREFECT_API_URL`` from the environment it gives its subprocess.
     """
-    import subprocess
-    import sys
-
+    import psutil
     from prefect.settings import PREFECT_API_URL, temporary_settings
 
-    with session_once("prefect-api") as shared:  # one worker starts it; the other waits here, then reads the URL
-        url_file = shared / "prefect-api-url"
-        if not url_file.exists():
-            with open(shared / "prefect-server.log", "ab") as log:
-                server = subprocess.Popen([sys.executable, str(Path(__file__).with_name("prefect_server.py")),
-                                           str(url_file), os.environ["GRAPHKIT_TEST_SESSION_PID"]],
-                                          stdin=subprocess.DEVNULL, stdout=log, stderr=log, start_new_session=True)
-            deadline = time.monotonic() + 180
-            while not url_file.exists():
-                assert server.poll() is None, (shared / "prefect-server.log").read_text()[-3000:]
-                assert time.monotonic() < deadline, "the test session's Prefect server did not start"
-                time.sleep(0.1)
+    url_file = start_prefect_server()
+    server = psutil.Process(int(url_file.with_name("prefect-server.pid").read_text()))
+    deadline = time.monotonic() + 180
+    while not url_file.exists():
+        assert server.is_running() and server.status() != psutil.STATUS_ZOMBIE, \
+            url_file.with_name("prefect-server.log").read_text()[-3000:]
+        assert time.monotonic() < deadline, "the test session's Prefect server did not start"
+        time.sleep(0.1)
     url = url_file.read_text()
     saved = os.environ.get("PREFECT_API_URL")
     os.environ["PREFECT_API_URL"] = url

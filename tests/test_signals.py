@@ -131,7 +131,7 @@ def store(tmp_path_factory, demo_template):
 
 
 @pytest.mark.slow
-def test_ctrl_c_then_sigterm_stop_a_refresh_and_the_rerun_resumes(store, prefect_api):
+def test_ctrl_c_then_sigterm_stop_a_refresh_and_the_rerun_resumes(store, request):
     """Ctrl-C (SIGINT to the process group) during the walks, then SIGTERM to the process during the training of
     the rerun, then a rerun to the end: each stop is prompt, quiet and leaves the store as it was; each rerun
     resumes from the stages the killed runs finished; at the end nothing is left in STORE/work/."""
@@ -158,7 +158,9 @@ def test_ctrl_c_then_sigterm_stop_a_refresh_and_the_rerun_resumes(store, prefect
     assert (walks / "manifest.json").is_file()
     shards = {p.name: p.stat().st_mtime_ns for p in walks.glob("shard-*.parquet")}
 
-    # the run to the end: in this process, on the shared test server (no signal, nothing to watch)
+    # the run to the end: in this process, on the shared test server (no signal, nothing to watch; asked for only
+    # now, so that the interrupted runs do not wait for it to boot)
+    request.getfixturevalue("prefect_api")
     code, out, err, _ = cli(*args[3:])
     assert code == 0, err[-3000:]
     assert "published version 2" in out
