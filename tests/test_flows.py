@@ -1,5 +1,5 @@
-"""The Prefect refresh flow and the nightly deployment, on the demo data, on the test process's one Prefect server
-(conftest's ``prefect_api``, a session ``prefect_test_harness``).
+"""The Prefect refresh flow and the nightly deployment, on the demo data, on the test session's one Prefect server
+(conftest's ``prefect_api``: a ``prefect_test_harness`` in a process of its own).
 
 What is checked: a run publishes and attaches its markdown artifact, one task per stage of
 ``graphkit.pipeline.STAGES``; after a failed run, changing only ``train.dim`` reuses ingest and walks (skipped by
@@ -22,6 +22,7 @@ from zoneinfo import ZoneInfo
 
 import pytest
 
+from conftest import FAST_DEMO
 from graphkit import pipeline
 from graphkit.config import load_config
 from graphkit.errors import ConfigError, StoreError
@@ -36,7 +37,7 @@ FAST = ["evaluate.publish_holdout_model=true"]
 
 @pytest.fixture
 def harness(prefect_api):
-    """The test process's one Prefect server (conftest's ``prefect_api``); yields its API URL."""
+    """The test session's one Prefect server (conftest's ``prefect_api``): its API URL."""
     return prefect_api
 
 
@@ -193,8 +194,6 @@ def test_failed_run_then_dim_change_reuses_ingest_and_walks(harness, tmp_path, m
 def _cli_refresh(store, api_url, fault=None):
     """``graphkit refresh`` of the demo as a separate process (SIGKILL must hit a process of its own) on the shared
     server; fewer, shorter walks and no evaluation (conftest's FAST_DEMO): what is checked is the resume."""
-    from conftest import FAST_DEMO
-
     env = {**os.environ, "PREFECT_API_URL": api_url, "PYTHONUNBUFFERED": "1"}
     env.pop("GRAPHKIT_FAULT", None)
     if fault:
@@ -208,8 +207,6 @@ def _cli_refresh(store, api_url, fault=None):
 def test_killed_runs_resume_and_a_stage_without_its_marker_runs_again(harness, tmp_path):
     """SIGKILL inside train, then inside publish; then the walk corpus and its marker are deleted. The last run
     reuses ingest and training (their markers), redoes the walks, and publishes."""
-    from conftest import FAST_DEMO
-
     store = tmp_path / "store"
     plan = pipeline.plan_run(load_config(DEMO, [f'store.path="{store}"', *FAST_DEMO]))
     ingest, walks, train = (Path(plan[k]) for k in ("ingest_dir", "walks_dir", "train_dir"))
@@ -263,7 +260,7 @@ def test_recorded_timings_add_up_to_the_command(tmp_path, prefect_api):
 
     import psutil
 
-    from conftest import FAST_DEMO, assert_gone, watch_descendants
+    from conftest import assert_gone, watch_descendants
 
     store = tmp_path / "store"
     shared = {k: v for k, v in os.environ.items() if k != "GRAPHKIT_FAULT"}
@@ -520,8 +517,6 @@ def test_a_run_leaves_at_most_its_flow_result_in_prefect_storage(harness, tmp_pa
     """Stages persist no Prefect result (the completion markers are the resume record); the only file a run
     adds to Prefect's local result storage is the flow's return value (a few bytes)."""
     from prefect.settings import get_current_settings
-
-    from conftest import FAST_DEMO
 
     storage = Path(get_current_settings().results.local_storage_path).expanduser()
     before = set(storage.iterdir()) if storage.is_dir() else set()
