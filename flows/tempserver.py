@@ -85,13 +85,18 @@ def start_temporary_server() -> Callable[[], int | None]:
     what it raised).
 
     The server boots in a process of its own for several seconds (its imports and database); meanwhile this process
-    can load what the run needs next. Prefect's server module is imported here first, in the calling thread, so
+    can load what the run needs next. With ``PREFECT_API_URL`` set the waiter returns None at once. Prefect's server module is imported here first, in the calling thread, so
     that the thread imports nothing while the caller imports (two threads importing one package's modules can
     dead-lock on the import locks).
     """
+    from prefect.settings import get_current_settings
+
+    if get_current_settings().api.url:
+        # A configured server (PREFECT_API_URL): nothing to start or guard, and no need to import Prefect's server
+        # (FastAPI, SQLAlchemy: seconds of a run's start-up that a client never uses).
+        return lambda: None
     import psutil  # noqa: F401 - see above
     from prefect.server.api import server  # noqa: F401 - see above
-    from prefect.settings import get_current_settings  # noqa: F401 - see above
 
     outcome: dict = {}
 

@@ -2,8 +2,8 @@
 byte-identical; and the smaller defects of issue 13 (foldin without new nodes, export to CSV, CSV entity tables,
 output paths), each through ``graphkit.cli.main`` in this process.
 
-The store is built once per module by a tiny demo refresh through ``graphkit.pipeline.refresh`` (no Prefect) and
-copied for every test, so no test sees another's changes.
+The store is built once per test process by a tiny demo refresh through ``graphkit.pipeline.refresh`` (no Prefect:
+conftest's ``demo_template``) and copied for every test, so no test sees another's changes.
 """
 
 from __future__ import annotations
@@ -11,8 +11,6 @@ from __future__ import annotations
 import hashlib
 import math
 import re
-import shutil
-import time
 from pathlib import Path
 
 import numpy as np
@@ -21,27 +19,18 @@ import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 import pytest
 
-import graphkit.cli as cli
-from conftest import FAST_DEMO
-from graphkit.config import load_config
-from graphkit.pipeline import refresh
+import graphkit.cli
+from conftest import FAST_DEMO, cli, copy_store
 from graphkit.store import list_versions, read_table
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "sample_parquet" / "demo.toml"
 
 
-@pytest.fixture(scope="module")
-def built_store(tmp_path_factory):
-    """A store with one published version of the demo (read-only: tests use ``store``, a copy)."""
-    store = tmp_path_factory.mktemp("bad-input") / "store"
-    assert refresh(load_config(DEMO, [f'store.path="{store}"', *FAST_DEMO])) == 1
-    return store
-
-
 @pytest.fixture
-def store(built_store, tmp_path):
-    return Path(shutil.copytree(built_store, tmp_path / "store"))
+def store(demo_template, tmp_path):
+    """A private copy of conftest's ``demo_template`` (the demo refreshed with FAST_DEMO, version 1)."""
+    return copy_store(demo_template, tmp_path / "store")
 
 
 def digest_tree(folder: Path) -> dict[str, str]:
@@ -57,11 +46,10 @@ def digest_tree(folder: Path) -> dict[str, str]:
 
 
 def run(capsys, *argv) -> tuple[int, str, str, float]:
-    t0 = time.monotonic()
-    code = cli.main([str(a) for a in argv])
-    seconds = time.monotonic() - t0
-    out, err = capsys.readouterr()
-    return code, out, err, seconds
+    """conftest's ``cli`` (``graphkit.cli.main`` in this process), with anything written around its streams."""
+    code, out, err, seconds = cli(*argv)
+    around = capsys.readouterr()
+    return code, around.out + out, around.err + err, seconds
 
 
 @pytest.fixture(autouse=True)
@@ -70,7 +58,7 @@ def no_prefect(monkeypatch):
     def reached(*_a, **_k):
         raise RuntimeError("preflight let a bad input through to the Prefect flow")
 
-    monkeypatch.setattr(cli, "_prefect_env", reached)
+    monkeypatch.setattr(graphkit.cli, "_prefect_env", reached)
     monkeypatch.delenv("GRAPHKIT_ID_SALT", raising=False)
     monkeypatch.delenv("GRAPHKIT_DEBUG", raising=False)
 

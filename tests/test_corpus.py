@@ -178,6 +178,7 @@ def test_different_seed_gives_different_corpus(graph_dir, reference, tmp_path):
     assert (other[:, 0] != reference[:, 0]).mean() > 0.9  # start orders differ
 
 
+@pytest.mark.slow
 def test_process_cluster_gives_same_walks(graph_dir, reference, tmp_path):
     # Two worker processes: each task memory-maps the graph from graph_dir and writes its own shard.
     distributed = pytest.importorskip("distributed")

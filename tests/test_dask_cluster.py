@@ -81,6 +81,7 @@ def _digests(folder: Path) -> dict[str, str]:
     return {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in sorted(folder.glob("shard-*"))}
 
 
+@pytest.mark.slow
 def test_process_cluster_corpus_is_byte_identical_to_single_process(cluster, demo_graph, tmp_path):
     lc, sizes = cluster
     cfg, plan, graph_dir = demo_graph

@@ -18,8 +18,9 @@ import pyarrow.parquet as pq
 import pytest
 
 import graphkit
+from conftest import cli, copy_store
 from graphkit.config import load_config
-from graphkit.errors import StoreError
+from graphkit.errors import InputError, StoreError
 from graphkit.store import connect, list_versions, store_lock
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -50,8 +51,20 @@ path = "store"
 
 
 def run_cli(*args, env=None, timeout=300):
+    """``graphkit ARGS`` as a separate process (for a writer that must not share this process's lock)."""
     return subprocess.run([sys.executable, "-m", "graphkit.cli", *map(str, args)], capture_output=True, text=True,
                           timeout=timeout, cwd=ROOT, env={**os.environ, **(env or {})})
+
+
+@pytest.fixture
+def no_prefect(monkeypatch):
+    """A bad input must fail before the flow: reaching Prefect is a failure of the test."""
+    import graphkit.cli
+
+    def reached(*_a, **_k):
+        raise RuntimeError("preflight let a bad input through to the Prefect flow")
+
+    monkeypatch.setattr(graphkit.cli, "_prefect_env", reached)
 
 
 def run_plain_refresh(config, env=None, timeout=300):
@@ -68,12 +81,14 @@ def snapshot(folder):
 
 
 @pytest.fixture(scope="module")
-def published(tmp_path_factory):
-    """A folder with the demo transfers, a config, and a store holding version 1 (built without Prefect)."""
+def published(tmp_path_factory, demo_template):
+    """A folder with the demo transfers, a config, and a store holding version 1 of those transfers (a copy of
+    conftest's ``demo_template``: the same edges and dimension, built without Prefect)."""
     root = tmp_path_factory.mktemp("faults")
     shutil.copy(ROOT / "sample_parquet" / "transfers.parquet", root / "edges.parquet")
     (root / "ok.toml").write_text(CONFIG.format(**SMALL))
-    assert graphkit.refresh(load_config(root / "ok.toml")) == 1
+    copy_store(demo_template, root / "store")
+    assert [v["version"] for v in list_versions(root / "store")] == [1]
     return root
 
 
@@ -103,17 +118,17 @@ BAD = {
 
 
 @pytest.mark.parametrize("case", sorted(BAD))
-def test_bad_config_or_input_exits_2_and_changes_nothing(published, case):
+def test_bad_config_or_input_exits_2_and_changes_nothing(published, no_prefect, case):
     old, new, match = BAD[case]
     text = CONFIG.format(**SMALL)
     assert old in text
     cfg = _bad_config(published, case, text.replace(old, new, 1))
     before = snapshot(published / "store")
-    r = run_cli("refresh", cfg)
-    assert r.returncode == 2, r.stderr
-    assert len(r.stderr.strip().splitlines()) == 1 and "Traceback" not in r.stderr
+    code, _, err, _ = cli("refresh", cfg)
+    assert code == 2, err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
     import re
-    assert re.search(match, r.stderr), r.stderr
+    assert re.search(match, err), err
     assert snapshot(published / "store") == before
 
 
@@ -133,7 +148,7 @@ BAD_TABLE_REASONS = {
 
 
 @pytest.mark.parametrize("kind", sorted(BAD_TABLE_REASONS))
-def test_bad_tables_exit_2_and_change_nothing(published, kind):
+def test_bad_tables_exit_2_and_change_nothing(published, no_prefect, kind):
     folder = published / f"bad_{kind}"
     folder.mkdir(exist_ok=True)
     if kind == "not_parquet":
@@ -159,14 +174,15 @@ def test_bad_tables_exit_2_and_change_nothing(published, kind):
                                                                                         'path = "../store"')
     (folder / "c.toml").write_text(text.replace(f'{folder.name}/*.parquet', "*.parquet"))
     before = snapshot(published / "store")
-    r = run_cli("refresh", folder / "c.toml")
-    assert r.returncode == 2, r.stderr
-    assert len(r.stderr.strip().splitlines()) == 1 and "Traceback" not in r.stderr
+    code, _, err, _ = cli("refresh", folder / "c.toml")
+    assert code == 2, err
+    assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
     import re
-    assert re.search(BAD_TABLE_REASONS[kind], r.stderr), r.stderr
+    assert re.search(BAD_TABLE_REASONS[kind], err), err
     assert snapshot(published / "store") == before
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("stage", ["ingest", "walks", "train", "publish"])
 def test_killed_run_leaves_store_whole_and_next_run_publishes(published_copy, stage):
     published = published_copy
@@ -176,8 +192,7 @@ def test_killed_run_leaves_store_whole_and_next_run_publishes(published_copy, st
     assert r.returncode == -9, r.stderr  # killed by SIGKILL
     # readers see exactly the versions that were there
     assert [(v["version"], v["is_current"]) for v in list_versions(published / "store")] == before_versions
-    r = run_plain_refresh(cfg)
-    assert r.returncode == 0, r.stderr
+    graphkit.refresh(load_config(cfg))  # the next run, in this process
     rows = list_versions(published / "store")
     assert rows[-1]["is_current"] and rows[-1]["status"] == "complete"
     assert rows[-1]["version"] == before_versions[-1][0] + 1
@@ -189,6 +204,7 @@ def test_killed_run_leaves_store_whole_and_next_run_publishes(published_copy, st
     assert list((published / "store" / "work").iterdir()) == []
 
 
+@pytest.mark.slow
 def test_killed_nightly_run_resumes_and_leaves_nothing_in_work(tmp_path):
     """A relative window (decay measured from the run's as_of, no until): the rerun after a kill takes the killed
     run's as_of from STORE/work, resumes its finished stages, and the finished run leaves STORE/work empty."""
@@ -203,14 +219,14 @@ def test_killed_nightly_run_resumes_and_leaves_nothing_in_work(tmp_path):
     [record] = work.glob("run-*.json")
     as_of = json.loads(record.read_text())["as_of"]
     assert len(list(work.glob("ingest-*/ingest.json"))) == 1
-    r = run_plain_refresh(root / "nightly.toml")
-    assert r.returncode == 0, r.stderr
+    assert graphkit.refresh(load_config(root / "nightly.toml")) == 1  # the rerun, in this process
     [row] = list_versions(root / "store")
     assert row["status"] == "complete" and row["params"]["lineage"]["window"]["as_of"] == as_of
     assert row["timings"]["ingest"] == row["timings"]["walks"] == 0.0 and row["timings"]["train"] > 0  # resumed
     assert list(work.iterdir()) == []
 
 
+@pytest.mark.slow
 def test_second_writer_refused_and_stale_lock_ignored(published_copy):
     published = published_copy
     store = published / "store"
@@ -266,14 +282,14 @@ def test_sql_is_confined_to_the_store(published, tmp_path):
         con.execute("set enable_external_access = true")
     assert con.sql("select count(*) from embeddings").fetchall()[0][0] > 0
     con.close()
-    r = run_cli("sql", published / "store", "select * from read_csv('/etc/passwd')")
-    assert r.returncode == 2 and "Permission" in r.stderr
+    code, _, err, _ = cli("sql", published / "store", "select * from read_csv('/etc/passwd')")
+    assert code == 2 and "Permission" in err
 
 
 def test_ids_are_bound_never_pasted(published):
     evil = "x'); drop table versions; --"
-    r = run_cli("similar", published / "store", evil)
-    assert r.returncode == 2 and "is not in the embeddings" in r.stderr
+    code, _, err, _ = cli("similar", published / "store", evil)
+    assert code == 2 and "is not in the embeddings" in err
     assert len(list_versions(published / "store")) >= 1
 
     # as a real node id, it is just an id
@@ -283,32 +299,30 @@ def test_ids_are_bound_never_pasted(published):
                    root / "edges.parquet")
     (root / "c.toml").write_text(CONFIG.format(**SMALL))
     graphkit.refresh(load_config(root / "c.toml"))
-    r = run_cli("similar", root / "store", evil, "--json", "--top", "2")
-    assert r.returncode == 0, r.stderr
-    assert {h["node_id"] for h in json.loads(r.stdout)} == {"b", "c"}
+    code, out, err, _ = cli("similar", root / "store", evil, "--json", "--top", "2")
+    assert code == 0, err
+    assert {h["node_id"] for h in json.loads(out)} == {"b", "c"}
     assert len(list_versions(root / "store")) == 1
 
 
-def test_hashed_ids_and_permissions(published, tmp_path):
+def test_hashed_ids_and_permissions(published, tmp_path, monkeypatch, no_prefect):
     root = tmp_path / "hashed"
     root.mkdir()
     shutil.copy(published / "edges.parquet", root / "edges.parquet")
     (root / "c.toml").write_text(CONFIG.format(**SMALL).replace("drop_null_ids = true",
                                                                 "drop_null_ids = true\nhash_ids = true"))
-    r = run_plain_refresh(root / "c.toml", env={"GRAPHKIT_ID_SALT": ""})
-    assert r.returncode != 0 and "GRAPHKIT_ID_SALT" in r.stderr
-    r = run_cli("refresh", root / "c.toml", env={"GRAPHKIT_ID_SALT": ""})
-    assert r.returncode == 2 and "GRAPHKIT_ID_SALT" in r.stderr
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", "")
+    with pytest.raises(InputError, match="GRAPHKIT_ID_SALT"):
+        graphkit.refresh(load_config(root / "c.toml"))
+    code, _, err, _ = cli("refresh", root / "c.toml")
+    assert code == 2 and "GRAPHKIT_ID_SALT" in err
     salt = "a-secret-key-of-the-team-0001"
-    code = textwrap.dedent(f"""
-        import os, graphkit
-        from graphkit.config import load_config
-        os.umask(0)  # the store must still come out without group/world write bits
-        graphkit.refresh(load_config({str(root / 'c.toml')!r}))
-    """)
-    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
-                       env={**os.environ, "GRAPHKIT_ID_SALT": salt})
-    assert r.returncode == 0, r.stderr
+    monkeypatch.setenv("GRAPHKIT_ID_SALT", salt)
+    umask = os.umask(0)  # the store must still come out without group/world write bits
+    try:
+        graphkit.refresh(load_config(root / "c.toml"))
+    finally:
+        os.umask(umask)
     ids, _ = graphkit.store.read_version(root / "store")
     raw = sorted(set(pq.read_table(root / "edges.parquet").column("sender").to_pylist()) - {None})
     expected = {hmac.new(salt.encode(), v.encode(), hashlib.sha256).hexdigest() for v in raw}  # RFC 2104 HMAC
@@ -387,50 +401,22 @@ def test_ids_are_hashed_once_at_ingest(tmp_path, monkeypatch):
     assert _published_ids(cfg, {"ingest_dir": str(tmp_path / "ing")})[0].to_pylist() == ["a", "b", "c", "d", "é"]
 
 
-def _descendants(proc) -> dict:
-    """pid -> (process, command line) of every live descendant."""
-    import psutil
-
-    found = {}
-    try:
-        for child in proc.children(recursive=True):
-            try:
-                found[child.pid] = (child, " ".join(child.cmdline()))
-            except psutil.Error:
-                pass
-    except psutil.NoSuchProcess:
-        pass
-    return found
-
-
-@pytest.mark.parametrize("fault", ["walks", None], ids=["killed-at-walks", "normal-exit"])
-def test_cli_run_never_leaves_its_temporary_prefect_server(published, tmp_path, fault):
-    """Without PREFECT_API_URL the CLI runs on Prefect's temporary server; SIGKILL must not orphan it."""
-    import time
-
-    import psutil
+@pytest.mark.slow
+def test_cli_run_never_leaves_its_temporary_prefect_server(published, tmp_path):
+    """Without PREFECT_API_URL the CLI runs on Prefect's temporary server; SIGKILL must not orphan it. (A normal
+    exit: tests/test_flows.py::test_recorded_timings_add_up_to_the_command.)"""
+    from conftest import assert_gone, watch_descendants
 
     env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}
-    if fault:
-        env.update(GRAPHKIT_FAULT=fault, GRAPHKIT_TEST_FAULTS="1")
+    env.update(GRAPHKIT_FAULT="walks", GRAPHKIT_TEST_FAULTS="1")
     cfg = published / "ok.toml"
     proc = subprocess.Popen([sys.executable, "-m", "graphkit.cli", "refresh", str(cfg), "--set",
                              f'store.path="{tmp_path / "store"}"'], cwd=ROOT, env=env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-    parent = psutil.Process(proc.pid)
-    seen = {}
-    while proc.poll() is None:  # note every helper process the run starts: the server and its watchdog
-        # again each time: a child just forked still shows our command line, a zombie shows none
-        seen.update({k: v for k, v in _descendants(parent).items() if v[1]})
-        time.sleep(0.05)
+    seen = watch_descendants(proc)  # every helper process the run starts: the server and its watchdog
     stderr = proc.stderr.read()
-    assert proc.returncode == (-9 if fault else 0), stderr[-2000:]
+    assert proc.returncode == -9, stderr[-2000:]
     server = [p for p, cmd in seen.values() if "uvicorn" in cmd and "prefect.server" in cmd]
     watchdog = [p for p, cmd in seen.values() if "flows.tempserver" in cmd]
     assert len(server) == 1 and len(watchdog) == 1, [cmd for _, cmd in seen.values()]
-    deadline = time.time() + 20
-    alive = server + watchdog
-    while alive and time.time() < deadline:
-        alive = [p for p in alive if p.is_running() and p.status() != psutil.STATUS_ZOMBIE]
-        time.sleep(0.1)
-    assert alive == [], f"left running: {alive}"
+    assert_gone(server + watchdog, within=20)

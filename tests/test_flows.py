@@ -1,4 +1,5 @@
-"""The Prefect refresh flow and the nightly deployment, on the demo data, under one session ``prefect_test_harness``.
+"""The Prefect refresh flow and the nightly deployment, on the demo data, on the test session's one Prefect server
+(conftest's ``prefect_api``: a ``prefect_test_harness`` in a process of its own).
 
 What is checked: a run publishes and attaches its markdown artifact, one task per stage of
 ``graphkit.pipeline.STAGES``; after a failed run, changing only ``train.dim`` reuses ingest and walks (skipped by
@@ -21,6 +22,7 @@ from zoneinfo import ZoneInfo
 
 import pytest
 
+from conftest import FAST_DEMO
 from graphkit import pipeline
 from graphkit.config import load_config
 from graphkit.errors import ConfigError, StoreError
@@ -33,14 +35,10 @@ DEMO = ROOT / "sample_parquet" / "demo.toml"
 FAST = ["evaluate.publish_holdout_model=true"]
 
 
-@pytest.fixture(scope="session")
-def harness():
-    """A temporary Prefect server and database for the whole session; yields its API URL."""
-    from prefect.settings import PREFECT_API_URL
-    from prefect.testing.utilities import prefect_test_harness
-
-    with prefect_test_harness(server_startup_timeout=120):
-        yield PREFECT_API_URL.value()
+@pytest.fixture
+def harness(prefect_api):
+    """The test session's one Prefect server (conftest's ``prefect_api``): its API URL."""
+    return prefect_api
 
 
 def _client():
@@ -97,7 +95,7 @@ def _row(store, version):
 
 # ---------------------------------------------------------------------------------------------------- the flow
 @pytest.fixture(scope="module")
-def published(harness, tmp_path_factory):
+def published(prefect_api, tmp_path_factory):
     """One full demo refresh with the default evaluation (held-out edges, one walk/train pass)."""
     store = tmp_path_factory.mktemp("flow") / "store"
     state = _refresh(store)
@@ -194,12 +192,14 @@ def test_failed_run_then_dim_change_reuses_ingest_and_walks(harness, tmp_path, m
 
 
 def _cli_refresh(store, api_url, fault=None):
+    """``graphkit refresh`` of the demo as a separate process (SIGKILL must hit a process of its own) on the shared
+    server; fewer, shorter walks and no evaluation (conftest's FAST_DEMO): what is checked is the resume."""
     env = {**os.environ, "PREFECT_API_URL": api_url, "PYTHONUNBUFFERED": "1"}
     env.pop("GRAPHKIT_FAULT", None)
     if fault:
         env.update(GRAPHKIT_FAULT=fault, GRAPHKIT_TEST_FAULTS="1")
     return subprocess.run([sys.executable, "-m", "graphkit.cli", "refresh", str(DEMO), "--set",
-                           f'store.path="{store}"', *[a for o in FAST for a in ("--set", o)]],
+                           f'store.path="{store}"', *[a for o in FAST_DEMO for a in ("--set", o)]],
                           capture_output=True, text=True, timeout=300, env=env, cwd=ROOT)
 
 
@@ -208,7 +208,7 @@ def test_killed_runs_resume_and_a_stage_without_its_marker_runs_again(harness, t
     """SIGKILL inside train, then inside publish; then the walk corpus and its marker are deleted. The last run
     reuses ingest and training (their markers), redoes the walks, and publishes."""
     store = tmp_path / "store"
-    plan = pipeline.plan_run(load_config(DEMO, [f'store.path="{store}"', *FAST]))
+    plan = pipeline.plan_run(load_config(DEMO, [f'store.path="{store}"', *FAST_DEMO]))
     ingest, walks, train = (Path(plan[k]) for k in ("ingest_dir", "walks_dir", "train_dir"))
 
     dead = _cli_refresh(store, harness, fault="train")
@@ -243,25 +243,28 @@ def test_killed_runs_resume_and_a_stage_without_its_marker_runs_again(harness, t
 
 
 @pytest.mark.slow
-def test_recorded_timings_add_up_to_the_command(tmp_path):
-    """Two ``graphkit refresh`` commands with their own temporary Prefect server (no ``PREFECT_API_URL``): the
-    timings recorded with the second version sum to within 5% of that command's wall time.
+def test_recorded_timings_add_up_to_the_command(tmp_path, prefect_api):
+    """Two ``graphkit refresh`` commands, the second with its own temporary Prefect server (no
+    ``PREFECT_API_URL``), as a user's: the timings recorded with the second version sum to within 5% of that
+    command's wall time, and the server and its watchdog are gone soon after it.
 
     The wall time runs from the child's own start, as the kernel records it (``psutil.Process.create_time``, the
     reference clock here), to its exit as seen by this process; the interpreter's start-up before any graphkit
     code runs is thus inside it, and the run measures it the same way (``startup``). What follows the version row
     (cleanup, the server's stop, the interpreter's exit) is recorded as ``after_publish_estimate``: the first run
-    uses the default, the second the first run's measurement. The check: the second row's own entries plus the
-    tail that run measured after its row add up to its wall time.
+    (on the shared test server: what it gives the second is its measurement, whatever its size) uses the default,
+    the second the first run's measurement. The check: the second row's own entries plus the tail that run
+    measured after its row add up to its wall time.
     """
     import json
 
     import psutil
 
-    from conftest import FAST_DEMO
+    from conftest import assert_gone, watch_descendants
 
     store = tmp_path / "store"
-    env = {k: v for k, v in os.environ.items() if k not in ("PREFECT_API_URL", "GRAPHKIT_FAULT")}
+    shared = {k: v for k, v in os.environ.items() if k != "GRAPHKIT_FAULT"}
+    own_server = {k: v for k, v in shared.items() if k != "PREFECT_API_URL"}
     args = [sys.executable, "-m", "graphkit.cli", "refresh", str(DEMO), "--set", f'store.path="{store}"',
             *[a for o in FAST_DEMO for a in ("--set", o)]]
     tail = store / "reports" / pipeline.TAIL_FILE
@@ -276,10 +279,12 @@ def test_recorded_timings_add_up_to_the_command(tmp_path):
             time.sleep(0.1)
         raise AssertionError(f"no after-publish measurement in {tail}")
 
-    walls, tails = [], []
-    for _ in range(2):
+    walls, tails, seen = [], [], {}
+    for env in (shared, own_server):
         proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env, cwd=ROOT)
         started = psutil.Process(proc.pid).create_time()
+        if env is own_server:
+            seen = watch_descendants(proc)  # every helper process the run starts: the server and its watchdog
         out, err = proc.communicate(timeout=600)
         walls.append(time.time() - started)
         assert proc.returncode == 0, err[-3000:]
@@ -296,6 +301,11 @@ def test_recorded_timings_add_up_to_the_command(tmp_path):
     # depends on the machine's load, so it is not what this test checks.)
     total = sum(second.values()) - second["after_publish_estimate"] + tails[1]
     assert abs(total - walls[1]) <= 0.05 * walls[1], (total, walls, tails, second)
+    # a normal exit leaves no temporary server behind (a killed run: tests/test_faults.py)
+    server = [p for p, cmd in seen.values() if "uvicorn" in cmd and "prefect.server" in cmd]
+    watchdog = [p for p, cmd in seen.values() if "flows.tempserver" in cmd]
+    assert len(server) == 1 and len(watchdog) == 1, [cmd for _, cmd in seen.values()]
+    assert_gone(server + watchdog, within=20)
 
 
 def test_retries_are_for_io_failures_only():
@@ -435,14 +445,21 @@ def test_bad_cron_timezone_or_name_is_a_config_error():
         build_deployment(DEMO, cron="0 2 * * *", timezone="UTC", name="a/b")
 
 
-def test_schedule_command_with_bad_cron_exits_2_fast():
-    started = time.monotonic()
-    r = subprocess.run([sys.executable, "-m", "graphkit.cli", "schedule", str(DEMO), "--cron", "0 2 * *"],
-                       capture_output=True, text=True, timeout=120, cwd=ROOT)
-    assert r.returncode == 2
-    assert r.stderr.count("\n") == 1 and "Traceback" not in r.stderr
-    assert r.stderr.startswith("graphkit: error: --cron:") and "'0 2 * *'" in r.stderr
-    assert time.monotonic() - started < 60  # no server is started before the options are checked
+def test_schedule_command_with_bad_cron_exits_2_fast(monkeypatch):
+    """In this process (conftest's ``cli``); reaching Prefect's server would fail the test: the options are
+    checked before any server is started."""
+    from conftest import cli
+    from graphkit.flows import tempserver
+
+    def reached(*_a, **_k):
+        raise RuntimeError("a bad --cron reached the Prefect server")
+
+    monkeypatch.setattr(tempserver, "guard_temporary_server", reached)
+    code, _, err, seconds = cli("schedule", DEMO, "--cron", "0 2 * *")
+    assert code == 2
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert err.startswith("graphkit: error: --cron:") and "'0 2 * *'" in err
+    assert seconds < 10
 
 
 @pytest.mark.parametrize("api_url", [None, "http://127.0.0.1:4200/api"])
@@ -495,12 +512,11 @@ def test_served_deployment_runs_a_refresh(harness, tmp_path):
     assert datetime.fromisoformat(row["params"]["lineage"]["window"]["as_of"]) == run.expected_start_time
 
 
+@pytest.mark.slow
 def test_a_run_leaves_at_most_its_flow_result_in_prefect_storage(harness, tmp_path):
     """Stages persist no Prefect result (the completion markers are the resume record); the only file a run
     adds to Prefect's local result storage is the flow's return value (a few bytes)."""
     from prefect.settings import get_current_settings
-
-    from conftest import FAST_DEMO
 
     storage = Path(get_current_settings().results.local_storage_path).expanduser()
     before = set(storage.iterdir()) if storage.is_dir() else set()

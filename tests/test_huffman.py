@@ -213,6 +213,7 @@ def test_bad_counts(counts, match):
         build_huffman(counts)
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(os.environ.get("NUMBA_DISABLE_JIT") == "1", reason="already running without the JIT")
 def test_huffman_kernels_without_jit():
     """The property checks with NUMBA_DISABLE_JIT=1 (the kernels run as Python), in a fresh interpreter."""

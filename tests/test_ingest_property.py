@@ -8,6 +8,7 @@ from pathlib import Path
 import networkx as nx
 import pyarrow as pa
 import pyarrow.parquet as pq
+import pytest
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 from graphkit.errors import GraphDataWarning
@@ -34,6 +35,7 @@ def edge_tables(draw):
     return rows, arrow_type, directed
 
 
+@pytest.mark.slow
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(edge_tables())
 def test_ingest_equals_networkx(table):

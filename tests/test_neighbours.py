@@ -84,6 +84,7 @@ def planted_store(planted_vectors, tmp_path_factory):
 
 # ---------------------------------------------------------------------------------------------- quality
 
+@pytest.mark.slow
 def test_recall_at_10_against_exact_brute_force(planted_store, planted_vectors):
     """recall@10 >= 0.95 (the issue's target) on 1000 seeded query nodes, exact truth from numpy blockwise."""
     vecs, labels = planted_vectors
@@ -105,6 +106,7 @@ def test_recall_at_10_against_exact_brute_force(planted_store, planted_vectors):
 
 # ---------------------------------------------------------------------------------------------- the table
 
+@pytest.mark.slow  # the planted store
 def test_table_schema_ranks_and_order(planted_store, tmp_path, capsys):
     out = tmp_path / "out" / "n.parquet"
     code, stdout, err = run(capsys, "neighbours", planted_store, "--top", "7", "--out", out)
@@ -266,6 +268,7 @@ def test_publish_writes_the_table_the_index_and_the_view(tmp_path, capsys):
         raw.close()
 
 
+@pytest.mark.slow
 def test_refresh_with_store_neighbours_publishes_the_table(tmp_path):
     from graphkit.pipeline import refresh
 
@@ -282,6 +285,7 @@ def test_refresh_with_store_neighbours_publishes_the_table(tmp_path):
 
 # ---------------------------------------------------------------------------------------------- similar
 
+@pytest.mark.slow
 def test_similar_from_the_index_agrees_with_brute_force(tmp_path, capsys):
     """A small graph's vectors (a 6 x 60 planted partition from networkx, trained by graphkit): the index is
     exact enough here for the top 5 of every sampled node to be the brute force's, in the same order."""

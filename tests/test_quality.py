@@ -2,11 +2,7 @@
 pipeline on a planted-partition graph (networkx.planted_partition_graph, a general-purpose reference generator;
 scikit-learn computes AUC and F1)."""
 
-import json
-import os
 import shutil
-import subprocess
-import sys
 from pathlib import Path
 
 import networkx as nx
@@ -16,6 +12,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import graphkit
+from conftest import cli
 from graphkit.config import load_config
 from graphkit.errors import ConfigError, GateFailure
 from graphkit.store import current_version, list_versions
@@ -52,13 +49,10 @@ path = "store"
 
 
 @pytest.fixture(scope="module")
-def planted(tmp_path_factory):
+def planted_inputs(tmp_path_factory):
     """20 blocks x 100 nodes, about 10 expected edges inside the block and 1 outside per node: a graph where
     link prediction is possible (with 6 inside and 6 outside, half the edges are random and even the true
-    blocks score a link AUC of only about 0.74).
-
-    Holds the inputs and a store with version 1 published from them; read-only: tests that refresh again work on a
-    copy (``planted_copy``)."""
+    blocks score a link AUC of only about 0.74). The edge and label tables and the config; no store."""
     root = tmp_path_factory.mktemp("planted")
     g = nx.planted_partition_graph(20, 100, 10 / 99, 1 / 1900, seed=3)
     e = np.array(g.edges())
@@ -67,8 +61,15 @@ def planted(tmp_path_factory):
     pq.write_table(pa.table({"node": pa.array(nodes), "label": pa.array([f"block-{v // 100}" for v in nodes])}),
                    root / "labels.parquet")
     (root / "c.toml").write_text(CONFIG)
-    assert graphkit.refresh(load_config(root / "c.toml")) == 1
     return root
+
+
+@pytest.fixture(scope="module")
+def planted(planted_inputs):
+    """The planted inputs and a store with version 1 published from them (a refresh with the evaluation: several
+    seconds); read-only: tests that refresh again work on a copy (``planted_copy``)."""
+    assert graphkit.refresh(load_config(planted_inputs / "c.toml")) == 1
+    return planted_inputs
 
 
 @pytest.fixture
@@ -97,9 +98,9 @@ def test_good_run_passes_gates_and_records_metrics(planted):
     assert 0.5 * hm < m["link_auc_cosine_se"] < 2 * hm
     assert "eval_walks" not in row["timings"] and row["timings"]["holdout"] > 0  # one pass
     assert (planted / "store" / "reports" / f"version-{version:06d}.html").exists()
-    out = subprocess.run([sys.executable, "-m", "graphkit.cli", "versions", str(planted / "store"), "--wide"],
-                         capture_output=True, text=True, cwd=ROOT)
-    assert "link_auc_cosine=" in out.stdout and "micro_f1_at_10=" in out.stdout
+    code, out, err, _ = cli("versions", planted / "store", "--wide")
+    assert code == 0, err
+    assert "link_auc_cosine=" in out and "micro_f1_at_10=" in out
 
 
 @pytest.mark.slow
@@ -133,11 +134,11 @@ def test_drift_is_measured_against_the_current_version(planted_copy):
         load_config(planted / "c.toml", ["evaluate.link_holdout=0"])
 
 
+@pytest.mark.slow  # needs the planted store
 def test_report_command(planted, tmp_path):
     out = tmp_path / "r.html"
-    r = subprocess.run([sys.executable, "-m", "graphkit.cli", "report", str(planted / "store"), "--out", str(out)],
-                       capture_output=True, text=True, cwd=ROOT)
-    assert r.returncode == 0, r.stderr
+    code, _, err, _ = cli("report", planted / "store", "--out", out)
+    assert code == 0, err
     html = out.read_text()
     assert html.count("data:image/png;base64,") >= 4 and "http://" not in html and "https://" not in html
 
@@ -169,8 +170,10 @@ def test_versions_command_shows_stages_and_fixed_costs(tmp_path, capsys):
     assert f"{sum(row.values()):.1f}" in out and f"{7 + row['publish']:.1f} + 3.0" in out
 
 
-def test_plan_publishes_the_holdout_model_unless_told_otherwise(planted):
+def test_plan_publishes_the_holdout_model_unless_told_otherwise(planted_inputs):
     from graphkit.pipeline import plan_run
+
+    planted = planted_inputs
 
     one = plan_run(load_config(planted / "c.toml"))
     # default: one walk/train pass on the holdout graph, and that model is published

@@ -4,6 +4,7 @@ import os
 import subprocess
 import sys
 
+import pytest
 from prefect.settings import PREFECT_HOME, temporary_settings
 
 from graphkit.flows.tempserver import _LOG_KEEP_BYTES, _OwnSessionSubprocess, server_log_path
@@ -42,25 +43,34 @@ def test_output_already_redirected_is_left_alone(tmp_path):
         assert not server_log_path().exists() or "out line" not in server_log_path().read_text()
 
 
+@pytest.mark.slow  # imports Prefect's server, as the real start does
 def test_background_start_hands_back_the_watchdog_or_the_error(monkeypatch):
     import threading
 
+    from prefect.settings import PREFECT_API_URL
+
     from graphkit.flows import tempserver
+
+    # with a configured server there is nothing to start: the waiter answers None, no thread, no guard
+    monkeypatch.setattr(tempserver, "guard_temporary_server", lambda: 1 / 0)
+    with temporary_settings(updates={PREFECT_API_URL: "http://127.0.0.1:9/api"}):
+        assert tempserver.start_temporary_server()() is None
 
     seen = []
     monkeypatch.setattr(tempserver, "guard_temporary_server",
                         lambda: seen.append(threading.current_thread().name) or 4711)
-    assert tempserver.start_temporary_server()() == 4711
-    assert seen == ["graphkit-server-start"]  # it ran in its own thread
+    with temporary_settings(restore_defaults={PREFECT_API_URL}):  # no server configured (as without the env var)
+        assert tempserver.start_temporary_server()() == 4711
+        assert seen == ["graphkit-server-start"]  # it ran in its own thread
 
-    def fails():
-        raise RuntimeError("Timed out while attempting to connect to ephemeral Prefect API server.")
+        def fails():
+            raise RuntimeError("Timed out while attempting to connect to ephemeral Prefect API server.")
 
-    monkeypatch.setattr(tempserver, "guard_temporary_server", fails)
-    wait = tempserver.start_temporary_server()
-    try:
-        wait()
-    except RuntimeError as exc:
-        assert "Timed out" in str(exc)
-    else:
-        raise AssertionError("the waiter must raise what the start raised")
+        monkeypatch.setattr(tempserver, "guard_temporary_server", fails)
+        wait = tempserver.start_temporary_server()
+        try:
+            wait()
+        except RuntimeError as exc:
+            assert "Timed out" in str(exc)
+        else:
+            raise AssertionError("the waiter must raise what the start raised")

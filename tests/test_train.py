@@ -176,6 +176,7 @@ def test_kernel_matches_python_reference(two_cliques, objective, variant):
         assert not np.allclose(got, plain, rtol=1e-5, atol=1e-5)
 
 
+@pytest.mark.slow
 @pytest.mark.skipif(os.environ.get("NUMBA_DISABLE_JIT") == "1", reason="already running without the JIT")
 def test_kernels_match_reference_without_jit():
     """The same comparison with NUMBA_DISABLE_JIT=1 (the kernels run as Python), in a fresh interpreter."""

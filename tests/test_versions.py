@@ -4,8 +4,6 @@ export and concurrent readers (issue: a versioned vector store)."""
 import json
 import multiprocessing as mp
 import os
-import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -17,7 +15,7 @@ import pytest
 from scipy.stats import special_ortho_group
 
 import graphkit
-from conftest import FAST_DEMO
+from conftest import FAST_DEMO, cli, copy_store
 from graphkit.config import load_config
 from graphkit.errors import StoreError
 from graphkit.features import export_features
@@ -34,12 +32,11 @@ def publish(store, ids, vecs, *, kinds=None, keep=None, **kw):
                               fingerprint=[], counts={}, timings={}, metrics={}, node_kinds=kinds, keep=keep, **kw)
 
 
-def test_lineage_of_a_refresh(tmp_path):
-    cfg = load_config(ROOT / "sample_parquet" / "demo.toml", [f'store.path="{tmp_path}"', *FAST_DEMO])
-    graphkit.refresh(cfg)
-    r = subprocess.run([sys.executable, "-m", "graphkit.cli", "versions", str(tmp_path), "--json"],
-                       capture_output=True, text=True, cwd=ROOT)
-    row = json.loads(r.stdout)[0]
+def test_lineage_of_a_refresh(demo_template):
+    """The demo refreshed with FAST_DEMO (conftest's ``demo_template``, read here only)."""
+    code, out, err, _ = cli("versions", demo_template, "--json")
+    assert code == 0, err
+    row = json.loads(out)[0]
     fp = row["input_fingerprint"][0]
     assert fp["path"].endswith("transfers.parquet")
     assert fp["size"] == (ROOT / "sample_parquet" / "transfers.parquet").stat().st_size and len(fp["sha256"]) == 64
@@ -211,11 +208,12 @@ def test_alignment_allocates_no_float64_copy(tmp_path):
     assert peak < matrix + gs.ALIGN_BLOCK_BYTES + indices, (peak, matrix)
 
 
-def test_refresh_records_alignment_residual(tmp_path, monkeypatch):
+@pytest.mark.slow
+def test_refresh_records_alignment_residual(tmp_path, demo_template, monkeypatch):
     from graphkit import store as gs
 
+    tmp_path = copy_store(demo_template, tmp_path / "store")  # version 1: the demo with FAST_DEMO
     args = [f'store.path="{tmp_path}"', *FAST_DEMO]
-    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args))
     reads = []
     join = gs.align._matched_rows
     monkeypatch.setattr(gs.align, "_matched_rows", lambda *a: reads.append(a[0]) or join(*a))
@@ -239,6 +237,7 @@ def test_neighbour_mean_fold_in():
     assert has.tolist() == [True, False]
 
 
+@pytest.mark.slow
 def test_foldin_command_publishes_provisional_rows(tmp_path):
     data = tmp_path / "data"
     data.mkdir()
@@ -248,10 +247,9 @@ def test_foldin_command_publishes_provisional_rows(tmp_path):
     (tmp_path / "c.toml").write_text(cfg_text)
     graphkit.refresh(load_config(tmp_path / "c.toml"))
     pq.write_table(pa.table({"s": ["a", "b", "c", "d", "x"], "t": ["b", "c", "a", "a", "y"]}), data / "e.parquet")
-    r = subprocess.run([sys.executable, "-m", "graphkit.cli", "foldin", str(tmp_path / "c.toml")],
-                       capture_output=True, text=True, cwd=ROOT)
-    assert r.returncode == 0, r.stderr
-    assert "1 provisional vectors (2 new nodes had no known neighbour)" in r.stdout
+    code, out, err, _ = cli("foldin", tmp_path / "c.toml")
+    assert code == 0, err
+    assert "1 provisional vectors (2 new nodes had no known neighbour)" in out
     t = read_table(tmp_path / "store").to_pylist()
     rows = {x["node_id"]: x for x in t}
     assert rows["d"]["provisional"] and not rows["a"]["provisional"] and "x" not in rows
@@ -300,10 +298,9 @@ def test_feature_export(tmp_path, tmp_path_factory):
     ent = exports / "customers.parquet"
     pq.write_table(pa.table({"customer": ["20", "99", "10", None], "plan": ["a", "b", "c", "d"]}), ent)
     out = exports / "features.parquet"
-    r = subprocess.run([sys.executable, "-m", "graphkit.cli", "features", str(tmp_path), "--entities", str(ent),
-                        "--on", "customer", "--out", str(out)], capture_output=True, text=True, cwd=ROOT)
-    assert r.returncode == 0, r.stderr
-    assert "2 entities have no vector" in r.stdout
+    code, stdout, err, _ = cli("features", tmp_path, "--entities", ent, "--on", "customer", "--out", out)
+    assert code == 0, err
+    assert "2 entities have no vector" in stdout
     t = pq.read_table(out)
     assert t.column_names == ["customer", "plan", "emb_000", "emb_001", "emb_002", "emb_003"]
     assert t.column("plan").to_pylist() == ["a", "b", "c", "d"]  # order and rows kept
@@ -311,9 +308,8 @@ def test_feature_export(tmp_path, tmp_path_factory):
     info = export_features(tmp_path, ent, "customer", exports / "f.csv", fmt="csv")
     assert info["without_vector"] == 2
     assert (exports / "f.csv").read_text().splitlines()[0] == "customer,plan,emb_000,emb_001,emb_002,emb_003"
-    bad = subprocess.run([sys.executable, "-m", "graphkit.cli", "features", str(tmp_path), "--entities", str(ent),
-                          "--on", "custmer", "--out", str(out)], capture_output=True, text=True, cwd=ROOT)
-    assert bad.returncode == 2 and "did you mean 'customer'" in bad.stderr
+    code, _, err, _ = cli("features", tmp_path, "--entities", ent, "--on", "custmer", "--out", out)
+    assert code == 2 and "did you mean 'customer'" in err and len(err.strip().splitlines()) == 1
 
 
 
@@ -375,6 +371,7 @@ def _reader(store, stop, queue):
     queue.put((sorted(seen), bad, reads))
 
 
+@pytest.mark.slow
 def test_concurrent_reader_sees_whole_versions(tmp_path):
     publish(tmp_path, [f"n{i}" for i in range(100)], np.ones((100, 4)))
     ctx = mp.get_context("spawn")
@@ -393,12 +390,13 @@ def test_concurrent_reader_sees_whole_versions(tmp_path):
     assert len(seen) >= 2  # it did read across publishes
 
 
-def test_warm_start_counts_and_moves_less(tmp_path):
+@pytest.mark.slow
+def test_warm_start_counts_and_moves_less(tmp_path, demo_template):
     """Warm start: nodes of the current version start from it, so a second run moves less than a cold one,
     measured as the overlap of each node's 10 nearest neighbours with the current version (rotation and scale
     invariant)."""
+    tmp_path = copy_store(demo_template, tmp_path / "store")  # version 1 (the first version is aligned to nothing)
     args = [f'store.path="{tmp_path}"', *FAST_DEMO, "store.align=false"]
-    graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args))
     graphkit.refresh(load_config(ROOT / "sample_parquet" / "demo.toml", args + ["walks.seed=5"]))
     cold = list_versions(tmp_path)[-1]
     promote_version(tmp_path, 1)
@@ -444,6 +442,7 @@ def test_clean_work_removes_only_old_stage_folders(tmp_path):
     assert sorted(clean_work(tmp_path, older_than_days=0, now=now)) == sorted([str(fresh), str(kept)])
 
 
+@pytest.mark.slow
 def test_a_finished_refresh_removes_abandoned_stage_folders(tmp_path):
     """An earlier run killed after its walks, whose parameters then changed, leaves folders nothing resumes from."""
     now = time.time()

@@ -98,6 +98,23 @@ def project(tmp_path):
     return tmp_path
 
 
+@pytest.fixture(scope="module")
+def published_template(tmp_path_factory):
+    """``project`` with version 1 published from ``ok.toml``, built once per module; never written to."""
+    root = tmp_path_factory.mktemp("writers") / "project"
+    root.mkdir()
+    shutil.copy(ROOT / "sample_parquet" / "transfers.parquet", root / "edges.parquet")
+    (root / "ok.toml").write_text(CONFIG.format(seed=3))
+    assert graphkit.refresh(load_config(root / "ok.toml")) == 1
+    return root
+
+
+@pytest.fixture
+def published(published_template, tmp_path):
+    """A private copy of ``published_template``: the project and its store holding version 1."""
+    return Path(shutil.copytree(published_template, tmp_path / "project"))
+
+
 def assert_consistent(store):
     """What any reader relies on: one current complete version; every complete version's files there, whole,
     with its row count; the views answer for each."""
@@ -155,6 +172,7 @@ with store_lock(sys.argv[1], purpose="refresh"):
 """
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("command", [["promote", "1"], ["pin", "1"], ["pin", "1", "--unpin"]])
 def test_standalone_writer_refused_with_the_holder_or_waits(tmp_path, capsys, command):
     _publish(tmp_path)
@@ -222,7 +240,8 @@ RACER = """
 import os, sys, time
 from graphkit.errors import StoreError
 from graphkit.store import store_lock
-start = float(sys.argv[2])
+print("ready", flush=True)  # imported: the test then sends both the same start time
+start = float(sys.stdin.readline())
 time.sleep(max(0.0, start - time.time()))
 try:
     with store_lock(sys.argv[1]):
@@ -238,9 +257,13 @@ def test_two_writers_started_at_the_same_instant(tmp_path):
     """Started together, one wins; the other is refused naming the winner, which is alive at that moment."""
     (tmp_path / ".lock").write_text(f"{_dead_pid()} refresh")
     for _ in range(2):
-        start = time.time() + 3.0  # both have imported graphkit by then
-        procs = [subprocess.Popen([sys.executable, "-c", RACER, str(tmp_path), str(start)], cwd=ROOT, env=_env(),
-                                  stdout=subprocess.PIPE, text=True) for _ in range(2)]
+        procs = [subprocess.Popen([sys.executable, "-c", RACER, str(tmp_path)], cwd=ROOT, env=_env(),
+                                  stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True) for _ in range(2)]
+        assert [p.stdout.readline().strip() for p in procs] == ["ready", "ready"]  # both have imported graphkit
+        start = time.time() + 0.2
+        for p in procs:
+            p.stdin.write(f"{start!r}\n")
+            p.stdin.close()
         lines = {p.pid: p.stdout.readline().strip() for p in procs}
         for p in procs:
             p.wait(timeout=60)
@@ -253,11 +276,11 @@ def test_two_writers_started_at_the_same_instant(tmp_path):
 
 
 @pytest.mark.slow
-def test_promote_racing_a_refresh_publish_loses_neither(project, capsys):
+def test_promote_racing_a_refresh_publish_loses_neither(published, capsys):
     """A refresh paused inside its publish (version folder renamed in, catalog not yet switched) holds the lock:
     a promote is refused naming it, or waits for it; both changes end up in the catalog."""
+    project = published  # version 1 published from ok.toml
     store = project / "store"
-    graphkit.refresh(load_config(project / "ok.toml"))
     (project / "seed5.toml").write_text(CONFIG.format(seed=5).replace("keep = 1", "keep = 5"))
     graphkit.refresh(load_config(project / "seed5.toml"))  # versions 1 and 2, 2 current
     code = f"import graphkit; from graphkit.config import load_config; " \
@@ -316,11 +339,11 @@ def test_publish_retry_recognises_its_version(tmp_path, monkeypatch):
 
 
 @pytest.mark.slow
-def test_refresh_publish_task_retry_after_the_switch_publishes_once(project, monkeypatch):
+def test_refresh_publish_task_retry_after_the_switch_publishes_once(published, monkeypatch):
     """The refresh's publish step fails with an I/O error right after the catalog switch; retried with the same
     arguments, as the Prefect task's retry does, it returns the version it published instead of a second one."""
+    project = published  # version 1 published from ok.toml
     store = project / "store"
-    graphkit.refresh(load_config(project / "ok.toml"))
     real = pipeline.stage_publish
     attempts = []
 
@@ -353,11 +376,11 @@ def test_refresh_publish_task_retry_after_the_switch_publishes_once(project, mon
 
 @pytest.mark.slow
 @pytest.mark.parametrize("fault", ["publish-version-renamed", "publish", "publish-catalog-switched"])
-def test_kill_after_each_rename_of_the_publish(project, fault):
+def test_kill_after_each_rename_of_the_publish(published, fault):
     """SIGKILL right after the version folder is renamed in, right before the catalog copy is renamed over the
     catalog, and right after it: readers see a whole store each time, and the next run publishes correctly."""
+    project = published  # version 1 published from ok.toml
     store = project / "store"
-    graphkit.refresh(load_config(project / "ok.toml"))
     (project / "seed5.toml").write_text(CONFIG.format(seed=5))
     code = f"import graphkit; from graphkit.config import load_config; " \
            f"graphkit.refresh(load_config({str(project / 'seed5.toml')!r}))"
@@ -428,6 +451,7 @@ def test_fault_point_needs_the_test_switch(tmp_path):
     assert r.returncode == -9
 
 
+@pytest.mark.slow
 def test_writers_in_threads_of_one_process_take_turns(tmp_path):
     """The flock cannot tell threads apart: publishes and promotes from several threads of one process must not
     lose each other's catalog changes."""
