@@ -153,6 +153,7 @@ def budgeted_store(tmp_path_factory):
     return store
 
 
+@pytest.mark.slow
 def test_the_decision_and_its_outcome_are_recorded_with_the_version(budgeted_store):
     first, second = list_versions(budgeted_store)
     for row, source in ((first, "calibration"), (second, "version 1")):
@@ -169,6 +170,7 @@ def test_the_decision_and_its_outcome_are_recorded_with_the_version(budgeted_sto
     assert second["params"]["lineage"]["budget"]["calibration_seconds"] == 0
 
 
+@pytest.mark.slow
 def test_a_tight_budget_trains_less_than_the_bounds(tmp_path, budgeted_store):
     store = Path(shutil.copytree(budgeted_store, tmp_path / "store"))
     rows = list_versions(store)
@@ -247,6 +249,7 @@ def _digest(folder: Path) -> dict[str, str]:
             for p in sorted(folder.rglob("*")) if p.is_file() and p.name != ".lock"}
 
 
+@pytest.mark.slow
 def test_the_command_refuses_a_budget_the_lineage_says_cannot_fit(tmp_path, capsys, budgeted_store):
     store = Path(shutil.copytree(budgeted_store, tmp_path / "store"))
     before = _digest(store)

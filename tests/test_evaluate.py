@@ -309,7 +309,7 @@ def test_node_classification_perfect_vectors():
     assert out["n_labelled"] == 500 and out["n_classes"] == 5 and out["repeats"] == 2
 
 
-@pytest.mark.parametrize("n_classes", [127, 128, 129, 205, 300])
+@pytest.mark.parametrize("n_classes", [127, 128, 129, 205, pytest.param(300, marks=pytest.mark.slow)])
 def test_node_classification_with_more_than_a_byte_of_labels(n_classes):
     """Many labels (a node's top-level package, its region, its merchant category): near-perfect vectors still
     score F1 = 1. scikit-learn 1.9's OneVsRestClassifier fits an int8 label matrix of more than 127 labels with its
