@@ -260,10 +260,6 @@ def _calibrate(graph, walks: dict, train: dict, seed: int) -> tuple[UnitCosts, f
     return costs, time.perf_counter() - t_start
 
 
-def run_tokens(n_nodes: int, per_node: int, length: int) -> int:
-    return int(np.int64(n_nodes) * per_node * length)
-
-
 def seconds_after(predicted: dict[str, float]) -> dict[str, float]:
     """For each predicted stage, the seconds predicted to follow it (for the progress lines' finish time)."""
     order = [k for k in ("eval_walks", "eval_train", "walks", "train") if k in predicted]

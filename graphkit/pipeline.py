@@ -23,6 +23,7 @@ from typing import Any, Callable
 import numpy as np
 import pyarrow.parquet as pq
 
+from . import budget, progress
 from .config import RefreshConfig
 from .errors import GateFailure
 from .faults import fault_point
@@ -115,8 +116,6 @@ class RunClock:
         self.flow_start = now
         self.during = {}
         self.row_at = None
-        from . import progress
-
         progress.predict_finish(None)  # a finish predicted for an earlier run of this process
 
     def elapsed(self) -> float:
@@ -239,7 +238,6 @@ def preflight(cfg: RefreshConfig, as_of: datetime | None = None) -> dict[str, An
 def _check_budget_from_lineage(cfg: RefreshConfig, rows_now: int) -> None:
     """Refuse a budget below the smallest sizing before any work, when the store's newest matching version can
     predict the run (its node count and the stages before the sizing scaled by the input's row count)."""
-    from . import budget
     from .store import CATALOG, list_versions
 
     if not (cfg.store_path / CATALOG).exists():
@@ -624,8 +622,6 @@ def stage_publish(cfg: RefreshConfig, plan: dict, ingest: dict, graph: dict, wal
         metrics["walk_diagnostics"] = walks["diagnostics"]
     lineage = {"warnings": ingest.get("warnings", []), "window": ingest.get("window", {}),
                "hashed_ids": cfg.input.hash_ids, "alignment": alignment}
-    if plan.get("budget"):
-        lineage["budget"] = plan["budget"]
     reasons = failed_gates(metrics, cfg.gates)
     figures = _report_figures(cfg, plan)
     rows = list_versions(plan["store"]) if Path(plan["store"], "catalog.duckdb").exists() else []
@@ -817,13 +813,13 @@ def _has_holdout(cfg: RefreshConfig, plan: dict) -> bool:
     return bool(plan.get("holdout_dir"))
 
 
-def _second_pass(cfg: RefreshConfig, plan: dict) -> bool:
-    return _has_holdout(cfg, plan) and not cfg.evaluate.publish_holdout_model
-
-
 def _passes_twice(cfg: RefreshConfig) -> bool:
     """A separate evaluation model is walked and trained besides the published one."""
     return cfg.evaluate.link_holdout > 0 and not cfg.evaluate.publish_holdout_model
+
+
+def _second_pass(cfg: RefreshConfig, plan: dict) -> bool:
+    return _passes_twice(cfg)
 
 
 def _has_budget(cfg: RefreshConfig, plan: dict) -> bool:
@@ -833,7 +829,6 @@ def _has_budget(cfg: RefreshConfig, plan: dict) -> bool:
 def stage_budget(cfg: RefreshConfig, plan: dict) -> dict[str, Any]:
     """Size the run to ``[budget] minutes`` (:mod:`graphkit.budget`): the walks per node and epochs the rest of the
     budget affords, from the store's lineage or a short calibration on the graph; writes ``sizing.json``."""
-    from . import budget
     from .store import CATALOG, list_versions
 
     t0 = time.perf_counter()
@@ -872,10 +867,7 @@ def apply_sizing(cfg: RefreshConfig, plan: dict, sizing: dict) -> RefreshConfig:
     plan.update(model_dirs(sized, Path(plan["work"]), plan["keys"]))
     plan["params"] = sized.to_public_dict()
     plan["budget"] = {k: v for k, v in sizing.items() if k != "skipped"}
-    from . import progress
-    from .budget import seconds_after
-
-    progress.predict_finish(seconds_after(sizing["predicted"]))
+    progress.predict_finish(budget.seconds_after(sizing["predicted"]))
     return sized
 
 

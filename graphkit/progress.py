@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 import warnings
 from contextlib import contextmanager
 from contextvars import ContextVar
@@ -24,8 +25,6 @@ def predict_finish(after: dict[str, float] | None) -> None:
 def finish_time(stage: str, seconds_left: float) -> float | None:
     """The run's predicted finish (epoch seconds) when ``stage`` has ``seconds_left`` to go; None without a
     prediction for that stage."""
-    import time
-
     if stage not in _AFTER:
         return None
     return time.time() + max(float(seconds_left), 0.0) + _AFTER[stage]
